@@ -204,7 +204,9 @@ def _read_custom_materials(reader: Reader, section: Section) -> None:
             spec = catalogue.custom_material(mat_name, **kwargs)
         except ValueError as exc:
             field_name = "formula" if "formula" in kwargs else "mass_fractions"
-            raise entry.error(field_name, str(exc).splitlines()[0] if str(exc) else "invalid",
+            text = (str(exc).splitlines() or ["invalid composition"])[0]
+            problem, _, valid = text.partition(" (valid: ")
+            raise entry.error(field_name, problem, valid.rstrip(")") or
                               "a chemical formula such as H2O or element mass fractions summing to 1"
                               ) from None
         reader.custom[mat_name] = spec
@@ -341,7 +343,8 @@ def _read_bars(reader: Reader, s: Section, frame: Frame, suffix: str) -> None:
             half[0] ** 2 + half[1] ** 2 + half[2] ** 2)
         reader.primitives.append(Primitive(
             shape, place.origin, place.rotation, half, material=material, mode=mode,
-            name=_named(name, f"{suffix} bar {k + 1}"), roi=roi, edge=edge, bound_radius=bound))
+            name=_named(name, f"{suffix} bar {k + 1}" if roi else suffix), roi=roi, edge=edge,
+            bound_radius=bound))
 
 
 # --------------------------------------------------------------------------------------------
