@@ -1,0 +1,377 @@
+"""Measurement physics: from exact path lengths to raw counts, flat and dark frames, projections.
+
+One entry point, :func:`measure`::
+
+    path lengths L[m, view, (row,) col(, sub-ray)]      (simbench.trace)
+      -> expected signal   sum_E W_b(E) exp(-sum_m mu_m(E) L_m), averaged over sub-rays
+      -> + scatter          (simbench.measure.scatter, optional approximation)
+      -> counting noise     Poisson / compound Poisson (simbench.measure.noise)
+      -> detector           blur, cross-talk, lag, gain, dark, electronic noise, defects
+      -> raw counts, flat and dark frames
+      -> projections        ln((flat - dark) / (counts - dark)), starvation floor recorded
+
+See :mod:`simbench.measure.detector` for the order and the formulas of the detector chain,
+:mod:`simbench.measure.config` for the scanner-file keys.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Sequence
+
+import numpy as np
+
+from simbench.errors import InputError, Where
+from simbench.measure.calibration import DEFAULT_FLOOR_COUNTS, log_normalize
+from simbench.measure.config import (
+    DetectorConfig,
+    ExposureConfig,
+    Physics,
+    ScatterConfig,
+    SourceConfig,
+    describe,
+    parse_detector,
+    parse_exposure,
+    parse_physics,
+    parse_scatter,
+    parse_source,
+)
+from simbench.measure.detector import (
+    apply_lag,
+    apply_psf,
+    detector_pattern,
+    response_weights,
+    sensor_efficiency,
+)
+from simbench.measure.forward import expected_per_energy, expected_signal
+from simbench.measure.noise import compound_counts, poisson_counts, rng_for
+from simbench.measure.scatter import scatter_signal
+
+__all__ = [
+    "DetectorConfig", "ExposureConfig", "Measurement", "Physics", "ScatterConfig",
+    "SourceConfig", "SpectrumArrays", "log_normalize", "measure", "parse_detector",
+    "parse_exposure", "parse_physics", "parse_scatter", "parse_source", "rng_for",
+    "source_spectrum",
+]
+
+
+@dataclass(frozen=True)
+class SpectrumArrays:
+    """A source spectrum as plain arrays.
+
+    Attributes
+    ----------
+    energies_kev : float64 (E,)
+        Bin centres.
+    fluence : float64 (E,)
+        Photons per mm^2 per mAs at 1 m in each bin (or relative fluence when only
+        ``air_counts`` exposures are used).
+    """
+
+    energies_kev: np.ndarray
+    fluence: np.ndarray
+
+
+@dataclass(frozen=True, eq=False)
+class Measurement:
+    """What the scanner measured.
+
+    Attributes
+    ----------
+    counts : array (V, [R,] C), or (B, V, [R,] C) for B photon-counting bins
+        Raw readings of the scan (dark level included).
+    flat, dark : array ([R,] C) or (B, [R,] C)
+        Air and dark frames, each averaged over its stated number of readings.
+    projections : array, counts' shape
+        ``ln((flat - dark) / (counts - dark))`` with the starvation floor.
+    metadata : dict
+        Every physics setting, the effective beam figures and the starvation record.
+    """
+
+    counts: np.ndarray
+    flat: np.ndarray
+    dark: np.ndarray
+    projections: np.ndarray
+    metadata: dict = field(default_factory=dict)
+
+
+def source_spectrum(source: SourceConfig, user_spectrum: SpectrumArrays | None = None,
+                    *, need_absolute: bool = False) -> SpectrumArrays:
+    """The spectrum of a source configuration.
+
+    Parameters
+    ----------
+    source : SourceConfig
+    user_spectrum : SpectrumArrays, optional
+        The content of a ``spectrum_file`` source (read by the caller); its filtration is
+        applied here.
+    need_absolute : bool
+        Whether the fluence must be absolute (mAs exposures).
+
+    Returns
+    -------
+    SpectrumArrays
+    """
+    if source.kind == "file":
+        if user_spectrum is None:
+            raise ValueError("a spectrum-file source needs the file's spectrum (user_spectrum)")
+        energies = np.asarray(user_spectrum.energies_kev, dtype=np.float64)
+        fluence = np.asarray(user_spectrum.fluence, dtype=np.float64).copy()
+        if source.filtration:
+            from simbench.materials import get_material, mu_table
+
+            specs = [get_material(name) for name, _ in source.filtration]
+            thick = np.array([t for _, t in source.filtration])
+            fluence *= np.exp(-(thick @ mu_table(specs, energies)))
+        return SpectrumArrays(energies, fluence)
+    if user_spectrum is not None:
+        return SpectrumArrays(np.asarray(user_spectrum.energies_kev, dtype=np.float64),
+                              np.asarray(user_spectrum.fluence, dtype=np.float64))
+    if source.kind == "monochromatic":
+        if not need_absolute:
+            return SpectrumArrays(np.array([source.energy_kev]), np.array([1.0]))
+        from simbench.materials import spectra
+
+        spec = spectra.monochromatic(source.energy_kev)
+    else:
+        from simbench.materials import spectra
+
+        spec = spectra.tube_spectrum(source.kvp, anode_angle_deg=source.anode_angle_deg,
+                                     filtration=tuple(source.filtration))
+    return SpectrumArrays(np.asarray(spec.energies_kev, dtype=np.float64),
+                          np.asarray(spec.fluence, dtype=np.float64))
+
+
+def _geometry(path_lengths, poses, pitch_mm, sdd_mm, subrays):
+    if poses is not None:
+        shape = tuple(poses.projection_shape)
+        if path_lengths.shape[1:] == shape:
+            subrays = False
+        elif path_lengths.shape[1:-1] == shape:
+            subrays = True
+        else:
+            raise ValueError(f"path_lengths shaped {path_lengths.shape} do not match the poses' "
+                             f"projection shape {shape} (with n_materials first, sub-rays last)")
+        pitch_mm = (poses.pitch_u_mm, poses.pitch_v_mm)
+        if not poses.parallel and sdd_mm is None:
+            sdd_mm = float(np.linalg.norm(poses.detector_centre[0] - poses.source[0]))
+    else:
+        shape = path_lengths.shape[1:-1] if subrays else path_lengths.shape[1:]
+    if len(shape) not in (2, 3):
+        raise ValueError(f"projection shape {shape} is neither (views, cols) nor "
+                         "(views, rows, cols)")
+    if pitch_mm is None:
+        pitch_mm = (1.0, 1.0)
+    return shape, bool(subrays), tuple(float(p) for p in pitch_mm), sdd_mm
+
+
+def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics: Physics, *,
+            poses=None, pitch_mm: tuple[float, float] | None = None, sdd_mm: float | None = None,
+            subrays: bool = False, spectrum: SpectrumArrays | None = None,
+            rng: np.random.Generator | int | None = 0, noise: bool = True,
+            starvation_floor: float = DEFAULT_FLOOR_COUNTS, dtype=np.float32) -> Measurement:
+    """Simulate a scan's raw counts, flat and dark frames and projections.
+
+    Parameters
+    ----------
+    path_lengths : float64 (M, V, [R,] C[, S])
+        Path lengths in mm per material along each ray (:func:`simbench.trace.trace`),
+        sub-rays last (averaged in intensity).
+    materials : sequence of MaterialSpec (M), or float64 (M, E)
+        The phantom's materials, or their mu in 1/mm on the spectrum's energies.
+    physics : Physics
+        Source, exposure, detector and scatter settings.
+    poses : Poses, optional
+        Gives the projection shape, the cell pitch and the SDD (divergent beams).
+    pitch_mm : (float, float), optional
+        Cell pitch along u and v when no poses are given (mm; for blur, scatter and the cell
+        area of mAs exposures).
+    sdd_mm : float, optional
+        Source-detector distance for mAs exposures without poses.
+    subrays : bool
+        Without poses: whether ``path_lengths`` has a trailing sub-ray axis.
+    spectrum : SpectrumArrays, optional
+        The spectrum to use (required for ``spectrum_file`` sources; otherwise it is made
+        from ``physics.source``).
+    rng : numpy.random.Generator or int
+        Random stream of this realization (see :func:`rng_for`), or a root seed.
+    noise : bool
+        False: noise-free mode (expected values, no counting or electronic noise).
+    starvation_floor : float
+        Floor of ``counts - dark`` before the logarithm, counts.
+    dtype : numpy dtype
+        Dtype of the returned arrays (float32 for large runs; float64 for exact checks).
+
+    Returns
+    -------
+    Measurement
+
+    Notes
+    -----
+    Expected detected photons per cell per view with no object, per energy bin:
+    ``n(E) = fluence(E) (1000 / SDD)^2 A_cell mAs eta(E)`` (mAs exposure), or ``fluence(E)
+    eta(E)`` scaled to sum to ``air_counts``. The scan then follows
+    :mod:`simbench.measure.detector`; projections follow
+    :func:`simbench.measure.calibration.log_normalize`.
+
+    Examples
+    --------
+    >>> from simbench.measure.config import ExposureConfig, Physics, SourceConfig
+    >>> phys = Physics(SourceConfig("monochromatic", energy_kev=60.0),
+    ...                ExposureConfig(air_counts=1e4))
+    >>> L = np.full((1, 4, 8), 20.0)                 # 20 mm of one material, 4 views, 8 cells
+    >>> m = measure(L, np.array([[0.02]]), phys, noise=False, dtype=np.float64)
+    >>> round(float(m.projections[0, 0]), 12)
+    0.4
+    """
+    lengths = np.asarray(path_lengths, dtype=np.float64)
+    if lengths.ndim < 3:
+        raise ValueError("path_lengths must be shaped (n_materials, views, [rows,] cols[, sub-rays])")
+    if not np.all(np.isfinite(lengths)):
+        raise ValueError("path_lengths contain NaN or inf")
+    shape, subrays, pitch, sdd = _geometry(lengths, poses, pitch_mm, sdd_mm, subrays)
+    src, exposure, det, sca = physics.source, physics.exposure, physics.detector, physics.scatter
+    if isinstance(rng, (int, np.integer)):
+        rng = rng_for(int(rng), "measure")
+
+    spec = source_spectrum(src, spectrum, need_absolute=exposure.mas_per_view is not None)
+    energies, fluence = spec.energies_kev, spec.fluence
+    if isinstance(materials, np.ndarray):
+        mu = np.asarray(materials, dtype=np.float64)
+    else:
+        from simbench.materials import mu_table
+
+        mu = mu_table(list(materials), energies)
+    if mu.shape != (lengths.shape[0], energies.size):
+        raise ValueError(f"mu must be shaped ({lengths.shape[0]}, {energies.size}), got {mu.shape}")
+
+    eta = sensor_efficiency(energies, det)
+    if exposure.air_counts is not None:
+        detected = fluence * eta
+        detected = detected * (exposure.air_counts / detected.sum())
+    else:
+        if sdd is None:
+            raise ValueError("an mAs exposure needs the source-detector distance (divergent "
+                             "poses or sdd_mm); use air_counts for parallel beams")
+        cell_area = pitch[0] * pitch[1]
+        detected = fluence * (1000.0 / sdd) ** 2 * cell_area * exposure.mas_per_view * eta
+    weights, beam = response_weights(detected, energies, det)
+    if det.photon_counting:
+        for b, value in enumerate(beam["air_counts_per_bin"]):
+            if not value > 0:
+                raise InputError(Where("scanner", field="detector.thresholds"),
+                                 f"threshold {det.thresholds_kev[b]:g} keV gets no photons from "
+                                 f"a spectrum ending at {energies.max():g} keV",
+                                 "thresholds below the source's highest energy")
+
+    # expected primary of every output row: (B', V, [R,] C)
+    primary = expected_signal(lengths, mu, weights, subrays)
+    air = weights.sum(axis=1)
+    two_d = len(shape) == 2
+    cell_axes = (-1,) if two_d else (-1, -2)
+
+    def signal_of(q):
+        return q[1] if not det.photon_counting else q.sum(axis=0)
+
+    # signal-weighted (energy integrating) or count-weighted mean energy of the air beam
+    beam_weight = weights[1] if not det.photon_counting else detected
+    mean_energy = float(np.sum(beam_weight * energies) / np.sum(beam_weight))
+    scatter_info = {}
+    if sca.model != "none":
+        from simbench.materials import get_material, mu_table
+
+        mu_water = float(mu_table([get_material("water")], [mean_energy])[0, 0])
+        sig = signal_of(primary)
+        scat = scatter_signal(primary, sig, float(signal_of(air[:, None])[0]), sca, pitch,
+                              tuple(a for a in cell_axes), mu_water)
+        scatter_info = {"mu_water_per_mm": mu_water,
+                        "mean_spr": float(np.mean(signal_of(scat) / np.maximum(sig, 1e-300)))}
+        total = primary + scat
+    else:
+        total = primary
+
+    streams = rng.spawn(5) if noise else [None] * 5
+    flat_shape = shape[1:]
+
+    # counting noise -> signal (B, V, [R,] C) and flat signal (B, [R,] C)
+    air_cells = np.broadcast_to(air.reshape((-1,) + (1,) * len(flat_shape)),
+                                (air.size,) + flat_shape)
+    if det.photon_counting:
+        if noise:
+            scan = poisson_counts(total, streams[0])
+            flat = poisson_counts(np.array(air_cells), streams[1], det.flat_frames)
+        else:
+            scan, flat = total.copy(), np.array(air_cells, dtype=np.float64)
+    else:
+        if not noise:
+            scan, flat = total[1:2].copy(), np.array(air_cells[1:2], dtype=np.float64)
+        elif energies.size == 1:
+            scale = weights[1, 0] / weights[0, 0]
+            scan = poisson_counts(total[0:1], streams[0]) * scale
+            flat = poisson_counts(np.array(air_cells[0:1]), streams[1], det.flat_frames) * scale
+        else:
+            rel = weights[1] / weights[0]
+
+            def exact_scan(cells):
+                n = expected_per_energy(lengths, mu, detected, cells, subrays)
+                ratio = total[0].reshape(-1)[cells] / primary[0].reshape(-1)[cells]
+                return n * ratio[:, None], rel
+
+            def exact_flat(cells):
+                return np.broadcast_to(detected, (cells.size, detected.size)), rel
+
+            scan = compound_counts(total[0], total[1], total[2], streams[0], exact_scan)[None]
+            flat = compound_counts(np.array(air_cells[0]), np.array(air_cells[1]),
+                                   np.array(air_cells[2]), streams[1], exact_flat,
+                                   det.flat_frames)[None]
+
+    # detector: PSF, lag, gain, readout, defects
+    scan = apply_psf(scan, det, pitch, cell_axes)
+    flat = apply_psf(flat, det, pitch, cell_axes)
+    scan = apply_lag(scan, det.lag, view_axis=1)
+    n_rows = 1 if two_d else shape[1]
+    pattern = detector_pattern(det, n_rows, shape[-1])
+    cells_shape = (shape[-1],) if two_d else (n_rows, shape[-1])
+    gain = pattern.gain.reshape(cells_shape)
+    drift = pattern.drift.reshape(cells_shape)
+    dead = pattern.dead.reshape(cells_shape)
+    hot = pattern.hot.reshape(cells_shape)
+    scan = scan * (gain * drift * ~dead)
+    flat = flat * (gain * ~dead)
+    sigma = det.electronic_noise
+    scan += det.dark_level
+    flat += det.dark_level
+    dark = np.full(flat.shape, det.dark_level, dtype=np.float64)
+    if noise and sigma > 0:
+        scan += sigma * streams[2].standard_normal(scan.shape)
+        flat += sigma / np.sqrt(det.flat_frames) * streams[3].standard_normal(flat.shape)
+        dark += sigma / np.sqrt(det.dark_frames) * streams[4].standard_normal(dark.shape)
+    if det.full_scale is not None:
+        scan = np.minimum(scan, det.full_scale)
+        flat = np.minimum(flat, det.full_scale)
+        scan[..., hot] = det.full_scale
+        flat[..., hot] = det.full_scale
+
+    projections, starvation = log_normalize(scan, flat, dark, view_axis=1,
+                                            floor=starvation_floor, dtype=dtype)
+    if not det.photon_counting:
+        scan, flat, dark, projections = scan[0], flat[0], dark[0], projections[0]
+    metadata: dict[str, Any] = {
+        "physics": describe(physics),
+        "noise": bool(noise),
+        "energies_kev": energies.tolist(),
+        "detected_air_photons_per_bin": detected.tolist(),
+        "air_photons": float(detected.sum()),
+        "mean_detected_energy_kev": mean_energy,
+        "sdd_mm": sdd,
+        "pitch_mm": list(pitch),
+        "sub_rays": int(lengths.shape[-1]) if subrays else 1,
+        "dead_cells": int(pattern.dead.sum()),
+        "hot_cells": int(pattern.hot.sum()),
+        "starvation": starvation,
+        "scatter": scatter_info,
+        "dtype": np.dtype(dtype).name,
+        **{k: v for k, v in beam.items()},
+    }
+    return Measurement(scan.astype(dtype, copy=False), flat.astype(dtype, copy=False),
+                       dark.astype(dtype, copy=False), projections, metadata)

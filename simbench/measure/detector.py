@@ -1,0 +1,343 @@
+"""Detector response: sensor efficiency, energy weighting, fixed pattern, blur, lag, readout.
+
+The chain applied to a scan, in this order (the flat frame goes through the same chain without
+the lag, which leaves a constant signal unchanged, and without the gain drift):
+
+1. **Sensor.** A photon of energy E is absorbed with probability
+   ``eta(E) = 1 - exp(-mu_sensor(E) * t)`` (mu of the sensor compound from
+   :mod:`simbench.materials`; an ideal sensor has eta = 1).
+2. **Energy response.** An energy-integrating cell adds the energy each absorbed photon
+   deposits, ``w(E) = E * mu_en(E) / mu(E)`` (local-deposition approximation with the
+   mass energy-absorption coefficient; E for an ideal sensor). Its signal is expressed in
+   *photon-equivalent counts*: deposited energy divided by the mean deposited energy per
+   detected photon of the unattenuated beam, so that the flat reads the air counts. A
+   photon-counting cell sorts photons into bins [t_b, t_{b+1}) of measured energy, the
+   measured energy being E blurred by a Gaussian of the stated FWHM (energy resolution).
+3. **Counting noise** (:mod:`simbench.measure.noise`): Poisson per bin, compound Poisson for
+   energy integration, whose relative variance carries the Swank factor
+   ``I = M1^2 / (M0 * M2)``.
+4. **Point-spread function**: a Gaussian of FWHM ``blur`` (mm) and nearest-neighbour
+   cross-talk (kernel ``[c, 1 - 2c, c]``) along u and v (``scipy.ndimage``, edges repeated).
+   Applied after counting noise, so neighbouring cells' noise becomes correlated, as with
+   scintillator light spread and charge sharing.
+5. **Lag**: a first-order recursive filter along the view axis,
+   ``y[0] = x[0]``, ``y[v] = (1 - a) x[v] + a y[v - 1]``: a fraction a of the signal of each
+   view is read in the next one, decaying geometrically (the detector starts in the steady
+   state of the first view).
+6. **Gain**: per-cell gain ``g = (1 + gain_spread * z1)`` in flat and scan alike (removed by the
+   flat-field correction), times ``(1 + gain_drift * z2)`` in the scan only: the change of
+   gain between the flat acquisition and the scan, which the correction cannot remove and
+   which shows as rings.
+7. **Readout**: plus the dark level and Gaussian electronic noise per reading (its rms divided
+   by sqrt(frames) in averaged flat and dark frames); saturation at ``full_scale``.
+8. **Defects**: dead cells read the dark frame's level with no signal; hot cells read
+   ``full_scale`` whenever the beam is on.
+
+The fixed pattern (gains, drift, dead and hot cells) comes from the detector's own
+``pattern_seed``, so it is the same in every realization of a scan.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage, signal, special
+
+from simbench.measure.config import DetectorConfig
+from simbench.measure.noise import rng_for
+
+FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * math.log(2.0))
+
+
+def sensor_material(detector: DetectorConfig):
+    """The sensor as a :class:`~simbench.materials.MaterialSpec` (None for an ideal sensor).
+
+    A catalogue name is used as it is (with the stated density if one is given); otherwise the
+    name is read as a chemical formula.
+    """
+    if detector.material is None:
+        return None
+    from dataclasses import replace
+
+    from simbench.materials import custom_material, get_material
+
+    try:
+        spec = get_material(detector.material)
+    except KeyError:
+        return custom_material(detector.material, formula=detector.material,
+                               density_g_cm3=detector.density_g_cm3)
+    if detector.density_g_cm3 > 0:
+        spec = replace(spec, density_g_cm3=detector.density_g_cm3)
+    return spec
+
+
+def sensor_efficiency(energies_kev: np.ndarray, detector: DetectorConfig) -> np.ndarray:
+    """Absorbed fraction ``1 - exp(-mu_sensor(E) t)`` of the sensor (ones if ideal).
+
+    Parameters
+    ----------
+    energies_kev : float64 (E,)
+    detector : DetectorConfig
+
+    Returns
+    -------
+    float64 (E,)
+
+    Notes
+    -----
+    ``mu_sensor`` is the total attenuation coefficient (with coherent scattering) from
+    :func:`simbench.materials.mu_table`: the probability that the photon interacts at all.
+    """
+    energies = np.asarray(energies_kev, dtype=np.float64)
+    spec = sensor_material(detector)
+    if spec is None:
+        return np.ones_like(energies)
+    from simbench.materials import mu_table
+
+    mu = mu_table([spec], energies)[0]
+    return -np.expm1(-mu * detector.thickness_mm)
+
+
+def deposited_energy_kev(energies_kev: np.ndarray, detector: DetectorConfig) -> np.ndarray:
+    """Mean energy deposited per interacting photon, ``E * mu_en(E) / mu(E)`` (E if ideal).
+
+    Parameters
+    ----------
+    energies_kev : float64 (E,)
+    detector : DetectorConfig
+
+    Returns
+    -------
+    float64 (E,), keV
+
+    Notes
+    -----
+    Local-deposition approximation: the photon's energy is kept except what leaves as
+    fluorescence and scattered photons, in the proportion of the mass energy-absorption to the
+    mass attenuation coefficient (:func:`simbench.materials.mass_energy_absorption_cm2_g`).
+    The spread of deposited energies of one incident energy is not modelled.
+    """
+    energies = np.asarray(energies_kev, dtype=np.float64)
+    spec = sensor_material(detector)
+    if spec is None:
+        return energies.copy()
+    from simbench.materials import mass_attenuation_cm2_g, mass_energy_absorption_cm2_g
+
+    ratio = mass_energy_absorption_cm2_g(spec, energies) / mass_attenuation_cm2_g(spec, energies)
+    return energies * ratio
+
+
+def swank_factor(photons: np.ndarray, weight: np.ndarray) -> float:
+    """Swank factor ``I = M1^2 / (M0 * M2)`` of a weighted photon count.
+
+    Parameters
+    ----------
+    photons : float64 (E,)
+        Expected photons per energy bin.
+    weight : float64 (E,)
+        Signal per photon.
+
+    Returns
+    -------
+    float
+        In (0, 1]; 1 for a single energy.
+
+    References
+    ----------
+    R. K. Swank, J. Appl. Phys. 44, 4199 (1973).
+    """
+    m0 = float(np.sum(photons))
+    m1 = float(np.sum(photons * weight))
+    m2 = float(np.sum(photons * weight * weight))
+    return m1 * m1 / (m0 * m2)
+
+
+def bin_response(energies_kev: np.ndarray, detector: DetectorConfig) -> np.ndarray:
+    """Probability that a photon of energy E is counted in each photon-counting bin.
+
+    Parameters
+    ----------
+    energies_kev : float64 (E,)
+    detector : DetectorConfig (photon counting)
+
+    Returns
+    -------
+    float64 (B, E)
+
+    Notes
+    -----
+    With measured energy ``E' ~ N(E, sigma)``, ``sigma = FWHM / 2.3548``, bin b counts
+    ``P(t_b <= E' < t_{b+1}) = Phi((t_{b+1} - E) / sigma) - Phi((t_b - E) / sigma)``
+    (``t_{B+1} = inf``); an ideal response (FWHM 0) is the indicator of the bin.
+    """
+    energies = np.asarray(energies_kev, dtype=np.float64)
+    edges = np.append(np.asarray(detector.thresholds_kev, dtype=np.float64), np.inf)
+    sigma = detector.energy_resolution_kev / FWHM_PER_SIGMA
+    if sigma > 0:
+        cdf = special.ndtr((edges[:, None] - energies[None, :]) / sigma)
+        return cdf[1:] - cdf[:-1]
+    above = (energies[None, :] >= edges[:, None]).astype(np.float64)
+    return above[:-1] - above[1:]
+
+
+def response_weights(detected_photons: np.ndarray, energies_kev: np.ndarray,
+                     detector: DetectorConfig) -> tuple[np.ndarray, dict]:
+    """Forward-model weights W (B, E) of the detector's output rows.
+
+    Parameters
+    ----------
+    detected_photons : float64 (E,)
+        Expected absorbed photons per cell per view and energy bin with no object.
+    energies_kev : float64 (E,)
+    detector : DetectorConfig
+
+    Returns
+    -------
+    weights : float64 (B, E)
+        Energy-integrating: three rows (photons M0, signal M1, signal variance M2) with the
+        signal in photon-equivalent counts. Photon counting: one row per threshold bin.
+    info : dict
+        ``mean_deposited_kev`` and ``swank_factor`` of the unattenuated beam
+        (energy integrating), or the expected air counts per bin (photon counting).
+    """
+    n = np.asarray(detected_photons, dtype=np.float64)
+    if detector.photon_counting:
+        w = bin_response(energies_kev, detector) * n[None, :]
+        return w, {"air_counts_per_bin": w.sum(axis=1).tolist()}
+    deposit = deposited_energy_kev(energies_kev, detector)
+    norm = float(np.sum(n * deposit) / np.sum(n))
+    rel = deposit / norm
+    w = np.stack([n, n * rel, n * rel * rel])
+    return w, {"mean_deposited_kev": norm, "swank_factor": swank_factor(n, deposit)}
+
+
+# --------------------------------------------------------------------------------------------
+# Fixed pattern
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class DetectorPattern:
+    """Per-cell fixed pattern of a detector, arrays shaped (n_rows, n_cols).
+
+    Attributes
+    ----------
+    gain : float64
+        Gain in flat and scan.
+    drift : float64
+        Extra gain factor of the scan (1 where there is no drift).
+    dead, hot : bool
+    """
+
+    gain: np.ndarray
+    drift: np.ndarray
+    dead: np.ndarray
+    hot: np.ndarray
+
+
+def _mark(mask: np.ndarray, cells, fraction: float, rng: np.random.Generator, what: str) -> None:
+    n_rows, n_cols = mask.shape
+    for row, col in cells:
+        if row >= n_rows or col >= n_cols:
+            from simbench.errors import InputError
+
+            raise InputError("detector", f"{what} cell [{row}, {col}] is outside the detector",
+                             f"rows 0..{n_rows - 1}, columns 0..{n_cols - 1}")
+        mask[row, col] = True
+    if fraction > 0:
+        mask |= rng.random(mask.shape) < fraction
+
+
+def detector_pattern(detector: DetectorConfig, n_rows: int, n_cols: int) -> DetectorPattern:
+    """Draw the detector's fixed pattern from its ``pattern_seed``.
+
+    Parameters
+    ----------
+    detector : DetectorConfig
+    n_rows, n_cols : int
+        Detector size (1 row for 2-D scanners).
+
+    Returns
+    -------
+    DetectorPattern
+    """
+    rng = rng_for(detector.pattern_seed, "detector pattern")
+    shape = (n_rows, n_cols)
+    z = rng.standard_normal((4,) + shape)
+    gain = 1.0 + detector.gain_spread * z[0]
+    drift = 1.0 + detector.gain_drift * z[1]
+    dead = np.zeros(shape, dtype=bool)
+    hot = np.zeros(shape, dtype=bool)
+    _mark(dead, detector.dead_cells, detector.dead_fraction, rng, "dead")
+    _mark(hot, detector.hot_cells, detector.hot_fraction, rng, "hot")
+    hot &= ~dead
+    return DetectorPattern(np.clip(gain, 0.0, None), np.clip(drift, 0.0, None), dead, hot)
+
+
+# --------------------------------------------------------------------------------------------
+# Spatial and temporal response
+# --------------------------------------------------------------------------------------------
+
+
+def apply_psf(values: np.ndarray, detector: DetectorConfig, pitch_mm: tuple[float, float],
+              cell_axes: tuple[int, ...]) -> np.ndarray:
+    """Gaussian blur and nearest-neighbour cross-talk along the detector axes.
+
+    Parameters
+    ----------
+    values : float64 array
+    detector : DetectorConfig
+    pitch_mm : (float, float)
+        Cell pitch along u and v.
+    cell_axes : tuple of int
+        Axis of u (columns), then of v (rows) if the detector has rows.
+
+    Returns
+    -------
+    float64 array, same shape (a new array if anything was applied)
+
+    Notes
+    -----
+    Gaussian of ``sigma = FWHM / (2 sqrt(2 ln 2)) / pitch`` cells, then the kernel
+    ``[c, 1 - 2c, c]``; both preserve the total signal away from the edges (edge cells are
+    repeated outward).
+    """
+    out = values
+    for i, axis in enumerate(cell_axes):
+        fwhm = detector.blur_fwhm_mm[i]
+        if fwhm > 0:
+            sigma = fwhm / FWHM_PER_SIGMA / pitch_mm[i]
+            out = ndimage.gaussian_filter1d(out, sigma, axis=axis, mode="nearest", truncate=4.0)
+        if detector.crosstalk > 0:
+            c = detector.crosstalk
+            out = ndimage.convolve1d(out, np.array([c, 1.0 - 2.0 * c, c]), axis=axis,
+                                     mode="nearest")
+    return out
+
+
+def apply_lag(values: np.ndarray, lag: float, view_axis: int) -> np.ndarray:
+    """First-order recursive lag along the view axis.
+
+    Parameters
+    ----------
+    values : float64 array
+    lag : float
+        Fraction a in [0, 1) of a view's signal read in the next view.
+    view_axis : int
+
+    Returns
+    -------
+    float64 array, same shape
+
+    Notes
+    -----
+    ``y[0] = x[0]``, ``y[v] = (1 - a) x[v] + a y[v - 1]`` (IIR filter, ``scipy.signal.lfilter``);
+    a constant signal is unchanged.
+    """
+    if lag <= 0:
+        return values
+    first = np.take(values, [0], axis=view_axis)
+    y, _ = signal.lfilter([1.0 - lag], [1.0, -lag], values, axis=view_axis, zi=lag * first)
+    return y
