@@ -108,10 +108,11 @@ class Reader:
             known = sorted(set(catalogue.material_names()) | set(self.custom))
             close = difflib.get_close_matches(name, known, n=3, cutoff=0.5)
             hint = ("did you mean " + " or ".join(f"'{c}'" for c in close) + "?") if close else ""
+            plain = [k for k in known if "mg/ml" not in k]
             raise InputError(where, f"unknown material '{name}'" + (f"; {hint}" if hint else ""),
-                             "a catalogue name (" + ", ".join(known[:12])
-                             + (", ..." if len(known) > 12 else "")
-                             + "), a name from this file's 'materials', or 'mu: <value> /mm'")
+                             "a catalogue name (" + ", ".join(plain)
+                             + ", or a dilution such as iodine-5mg/ml), a name from this file's"
+                             " 'materials', or 'mu: <value> /mm'")
         return self.use_material(("catalogue", name), lambda: spec)
 
     def mu_material(self, mu_per_mm: float) -> int:

@@ -74,8 +74,8 @@ def read_voxels(reader, s: Section) -> C.VoxelVolume:
                           "float32 or float64 mu values (or use 'labels' for integer labels)")
         mu = values.astype(np.float64) * MU_UNITS_PER_MM[unit]
         if not np.all(np.isfinite(mu)):
-            bad = np.argwhere(~np.isfinite(mu))[0]
-            raise s.error("file", f"the mu volume holds NaN or inf (first at index {tuple(bad)})",
+            bad = tuple(int(i) for i in np.argwhere(~np.isfinite(mu))[0][3 - dim:])
+            raise s.error("file", f"the mu volume holds NaN or inf (first at index {bad})",
                           "finite mu values")
         reader.use_material(("mu volume",), lambda: MaterialSpec(
             name="mu volume", kind="mu", mu_per_mm=1.0))
