@@ -478,3 +478,33 @@ def test_bad_keyword_arguments(kwargs, field):
     args = dict(n_cols=4, pitch_u_mm=1.0, n_views=3) | kwargs
     with pytest.raises(InputError, match=field):
         fan_poses(**args)
+
+
+# --------------------------------------------------------------------------------------------
+# Figure and documentation
+# --------------------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("make", [
+    lambda: parallel_poses(n_cols=16, pitch_u_mm=2.0, n_views=8),
+    lambda: cone_poses(sid_mm=SID, sdd_mm=SDD, n_cols=16, n_rows=8, pitch_u_mm=2.0,
+                       pitch_v_mm=2.0, n_views=8, curved=True),
+])
+def test_draw_geometry_writes_a_png_atomically(tmp_path, make):
+    from simbench.report.geometry_figure import draw_geometry
+
+    out = draw_geometry(make(), tmp_path / "sub" / "geometry.png", views=[0, 3])
+    assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification)
+    assert [p.name for p in out.parent.iterdir()] == ["geometry.png"]
+
+
+def test_documentation_example_parses():
+    from pathlib import Path
+
+    text = (Path(__file__).parent.parent / "docs" / "geometry.md").read_text()
+    block = re.findall(r"```yaml\n(.*?)```", text, re.S)[0]
+    p = geometry_from_text(block).poses()
+    assert p.projection_shape == (2, 192, 256)
+    # the second view is phi = 10 deg: direction d = (-sin 10, cos 10, 0) (ARCHITECTURE.md)
+    np.testing.assert_allclose(p.direction[1], [-math.sin(math.radians(10)),
+                                                math.cos(math.radians(10)), 0], atol=1e-4)
