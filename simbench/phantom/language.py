@@ -40,8 +40,9 @@ SHAPE_KEYS = {
     "cone": ("base_radius", "top_radius", "height", "axis", "rotate"),
 }
 TOP_KEYS = ("name", "dimension", "units", "description", "materials", "objects", "voxels")
+MAX_COPIES = 100_000  # copies per pattern: far beyond any test object, below memory trouble
 MATERIAL_KEYS = ("formula", "mass_fractions", "density")
-CAUTION_VALID_ROTATE = "a list of rotations about world axes such as [x: 30, z: 45] (degrees)"
+ROTATE_VALID = "a list of rotations about world axes such as [x: 30, z: 45] (degrees)"
 
 
 @dataclass(frozen=True)
@@ -261,7 +262,7 @@ def _read_rotate(s: Section) -> np.ndarray:
     for item, where in s.sequence("rotate"):
         if not isinstance(item, dict) or len(item) != 1 or next(iter(item)) not in ("x", "y", "z"):
             raise InputError(where, f"a rotation step must be one axis: angle pair, got {item!r}",
-                             CAUTION_VALID_ROTATE)
+                             ROTATE_VALID)
         step = Section(item, where)
         axis = next(iter(item))
         steps.append((axis, step.angle(axis)))
@@ -296,7 +297,7 @@ def _read_ring(reader: Reader, s: Section, frame: Frame, suffix: str) -> None:
     s.string("name", "")
     ring = frame.place(_centre(reader, s), _placement_rotation(reader, s))
     radius = s.length("radius", positive=True)
-    count = s.integer("count", minimum=1)
+    count = s.integer("count", minimum=1, maximum=MAX_COPIES)
     start = s.angle("start_angle", 0.0)
     turn = s.boolean("turn_copies", False)
     for k in range(count):
@@ -313,7 +314,7 @@ def _read_array(reader: Reader, s: Section, frame: Frame, suffix: str) -> None:
     s.check_keys(allowed, required=("count", "step", "object"))
     s.string("name", "")
     array = frame.place(_centre(reader, s), _placement_rotation(reader, s))
-    count = s.integer("count", minimum=1)
+    count = s.integer("count", minimum=1, maximum=MAX_COPIES)
     step = np.array(list(s.lengths("step", reader.dimension)) + [0.0] * (3 - reader.dimension))
     for k in range(count):
         copy = array.place((k - (count - 1) / 2.0) * step, np.eye(3))
@@ -330,7 +331,7 @@ def _read_bars(reader: Reader, s: Section, frame: Frame, suffix: str) -> None:
     name = s.string("name", "")
     lp = check_number(s.raw("line_pairs_per_mm"), s.at("line_pairs_per_mm"), minimum=0.0,
                       exclusive_minimum=True, unit="lp/mm")
-    count = s.integer("count", minimum=1)
+    count = s.integer("count", minimum=1, maximum=MAX_COPIES)
     length = s.length("length", positive=True)
     width = 1.0 / (2.0 * lp)  # one line pair = one bar + one gap of equal width
     thickness = s.length("thickness", positive=True) if reader.dimension == 3 else math.inf
