@@ -264,8 +264,10 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
                                  f"a spectrum ending at {energies.max():g} keV",
                                  "thresholds below the source's highest energy")
 
+    # energies that reach no output (zero fluence, or outside every bin) are skipped
+    keep = np.any(weights != 0, axis=0)
     # expected primary of every output row: (B', V, [R,] C)
-    primary = expected_signal(lengths, mu, weights, subrays)
+    primary = expected_signal(lengths, mu[:, keep], weights[:, keep], subrays)
     air = weights.sum(axis=1)
     two_d = len(shape) == 2
     cell_axes = (-1,) if two_d else (-1, -2)
@@ -310,15 +312,15 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
             scan = poisson_counts(total[0:1], streams[0]) * scale
             flat = poisson_counts(np.array(air_cells[0:1]), streams[1], det.flat_frames) * scale
         else:
-            rel = weights[1] / weights[0]
+            rel = weights[1, keep] / weights[0, keep]
 
             def exact_scan(cells):
-                n = expected_per_energy(lengths, mu, detected, cells, subrays)
+                n = expected_per_energy(lengths, mu[:, keep], detected[keep], cells, subrays)
                 ratio = total[0].reshape(-1)[cells] / primary[0].reshape(-1)[cells]
                 return n * ratio[:, None], rel
 
             def exact_flat(cells):
-                return np.broadcast_to(detected, (cells.size, detected.size)), rel
+                return np.broadcast_to(detected[keep], (cells.size, rel.size)), rel
 
             scan = compound_counts(total[0], total[1], total[2], streams[0], exact_scan)[None]
             flat = compound_counts(np.array(air_cells[0]), np.array(air_cells[1]),
