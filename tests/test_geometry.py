@@ -508,3 +508,29 @@ def test_documentation_example_parses():
     # the second view is phi = 10 deg: direction d = (-sin 10, cos 10, 0) (ARCHITECTURE.md)
     np.testing.assert_allclose(p.direction[1], [-math.sin(math.radians(10)),
                                                 math.cos(math.radians(10)), 0], atol=1e-4)
+
+
+def test_detector_missing_the_axis_warns():
+    from simbench.errors import InputWarning
+
+    with pytest.warns(InputWarning, match=r"scanner.yaml:8:\d+: geometry.column_offset: .*"
+                                          r"rotation axis"):
+        geometry_from_text(_with(FAN, "column_offset", "60 mm"))
+
+
+@pytest.mark.parametrize("text", [
+    FAN,
+    _with(_with(FAN, "detector_shape", "curved"), "arc", "short"),
+    "geometry:\n  type: helical\n  sid: 500\n  sdd: 900\n  columns: 4\n  column_pitch: 1\n"
+    "  rows: 2\n  row_pitch: 1\n  views: 12\n  arc: 700\n  table_feed_per_turn: -10\n"
+    "  start_z: 3\n  direction: clockwise\n  start_angle: 17\n  row_offset: 0.5 cells\n",
+    "geometry:\n  type: parallel\n  columns: 5\n  column_pitch: 1 cm\n  rows: 3\n  views: 7\n",
+    POSES.format(u="[1, 0, 0]", v="[0, 0, 1]"),
+])
+def test_resolved_settings_read_back_to_the_same_rays(text):
+    import yaml
+
+    g = geometry_from_text(text)
+    again = geometry_from_text(yaml.safe_dump({"geometry": g.resolved()}, sort_keys=False))
+    np.testing.assert_allclose(cell_rays(again.poses()), cell_rays(g.poses()), rtol=1e-12,
+                               atol=1e-9)

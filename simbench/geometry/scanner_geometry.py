@@ -7,7 +7,8 @@ Keys (lengths: a bare number is in the file's ``units``, default mm, or give a u
 key                    meaning
 =====================  ==========================================================================
 type                   ``parallel``, ``fan`` (2-D), ``cone``, ``helical`` or ``poses``
-dimension              2 or 3 (``parallel``: default 2 without ``rows``; ``poses``: default 3)
+dimension              2 or 3 (``parallel``: default 2 without ``rows``; ``poses``: default 3;
+                       ``fan`` is 2, ``cone`` and ``helical`` are 3)
 sid                    source-to-isocentre distance (fan, cone, helical)
 sdd                    source-to-detector distance, > sid (fan, cone, helical)
 detector_shape         ``flat`` (default) or ``curved`` (equiangular; not for parallel beams)
@@ -45,7 +46,7 @@ from typing import Any
 
 import numpy as np
 
-from simbench.errors import InputError, Where
+from simbench.errors import InputError, Where, warn_input
 from simbench.geometry.circular import (cone_poses, fan_angle_rad, fan_poses, parallel_poses,
                                         short_scan_arc_rad)
 from simbench.geometry.explicit import DIVERGENT_FIELDS, PARALLEL_FIELDS, poses_from_arrays
@@ -66,9 +67,9 @@ _DISTANCES = ("sid", "sdd", "detector_shape")
 
 ALLOWED = {
     "parallel": ("type", "dimension", "detector_shape") + _DETECTOR + _ROWS + _ORBIT,
-    "fan": ("type",) + _DISTANCES + _DETECTOR + ("row_pitch",) + _ORBIT,
-    "cone": ("type",) + _DISTANCES + _DETECTOR + _ROWS + _ORBIT,
-    "helical": ("type",) + _DISTANCES + _DETECTOR + _ROWS + _ORBIT
+    "fan": ("type", "dimension") + _DISTANCES + _DETECTOR + ("row_pitch",) + _ORBIT,
+    "cone": ("type", "dimension") + _DISTANCES + _DETECTOR + _ROWS + _ORBIT,
+    "helical": ("type", "dimension") + _DISTANCES + _DETECTOR + _ROWS + _ORBIT
     + ("table_feed_per_turn", "start_z"),
     "poses": ("type", "dimension", "beam", "detector_shape") + _DETECTOR + _ROWS
     + ("poses", "pose_file"),
@@ -210,13 +211,13 @@ class ScannerGeometry:
         """Every setting with its default filled in, as plain YAML-ready values with units."""
         out: dict[str, Any] = {"type": self.kind, "dimension": self.dimension}
         if self.kind in ("fan", "cone", "helical"):
-            out.update(sid=f"{self.sid_mm:.10g} mm", sdd=f"{self.sdd_mm:.10g} mm")
+            out.update(sid=f"{_exact(self.sid_mm)} mm", sdd=f"{_exact(self.sdd_mm)} mm")
         out["detector_shape"] = "curved" if self.curved else "flat"
-        out.update(columns=self.n_cols, column_pitch=f"{self.pitch_u_mm:.10g} mm",
-                   column_offset=f"{self.offset_u_mm:.10g} mm")
+        out.update(columns=self.n_cols, column_pitch=f"{_exact(self.pitch_u_mm)} mm",
+                   column_offset=f"{_exact(self.offset_u_mm)} mm")
         if self.dimension == 3:
-            out.update(rows=self.n_rows, row_offset=f"{self.offset_v_mm:.10g} mm")
-        out["row_pitch"] = f"{self.pitch_v_mm:.10g} mm"
+            out.update(rows=self.n_rows, row_offset=f"{_exact(self.offset_v_mm)} mm")
+        out["row_pitch"] = f"{_exact(self.pitch_v_mm)} mm"
         if self.kind == "poses":
             out["beam"] = "parallel" if self.parallel else "divergent"
             if self.pose_file:
@@ -229,14 +230,19 @@ class ScannerGeometry:
                                  "u_axis": p.u_axis[i].tolist(), "v_axis": p.v_axis[i].tolist()}
                                 for i in range(p.n_views)]
             return out
-        out.update(views=self.n_views, arc=f"{math.degrees(self.arc_rad):.10g} deg",
+        out.update(views=self.n_views, arc=f"{_exact(math.degrees(self.arc_rad))} deg",
                    include_arc_end=self.include_arc_end,
-                   start_angle=f"{math.degrees(self.start_angle_rad):.10g} deg",
+                   start_angle=f"{_exact(math.degrees(self.start_angle_rad))} deg",
                    direction="clockwise" if self.clockwise else "counterclockwise")
         if self.kind == "helical":
-            out.update(table_feed_per_turn=f"{self.table_feed_per_turn_mm:.10g} mm",
-                       start_z=f"{self.start_z_mm:.10g} mm")
+            out.update(table_feed_per_turn=f"{_exact(self.table_feed_per_turn_mm)} mm",
+                       start_z=f"{_exact(self.start_z_mm)} mm")
         return out
+
+
+def _exact(value: float) -> str:
+    """Shortest text that reads back to the same float."""
+    return repr(float(value))
 
 
 # --------------------------------------------------------------------------------------------
@@ -330,6 +336,10 @@ def parse_geometry(section: Section) -> ScannerGeometry:
         dimension = section.integer("dimension", 3, minimum=2, maximum=3)
     else:
         dimension = 2 if kind == "fan" else 3
+        if section.has("dimension") and section.integer("dimension") != dimension:
+            raise section.error("dimension", f"a {kind} scanner is {dimension}-D",
+                                f"{dimension}, or type cone for a 3-D scanner" if kind == "fan"
+                                else f"{dimension}, or type fan for a 2-D scanner")
     if dimension == 2:
         for key in ("rows", "row_offset"):
             if section.has(key) and not (key == "rows" and section.raw(key) == 1):
@@ -370,9 +380,13 @@ def parse_geometry(section: Section) -> ScannerGeometry:
         raise section.error("table_feed_per_turn", "a helical scan needs a table feed",
                             "a non-zero length per turn, or type cone for a circular scan")
     try:
-        geometry.poses()
+        poses = geometry.poses()
     except InputError as exc:  # pragma: no cover - every value is checked above
         raise InputError(section.where, exc.problem, exc.valid) from None
+    if field_of_view_radius_mm(poses, every_view=False) == 0.0:
+        warn_input(section.at("column_offset") if section.has("column_offset") else section.where,
+                   "the detector does not reach the rotation axis: no point is seen from "
+                   "every direction (field of view 0)")
     return geometry
 
 
