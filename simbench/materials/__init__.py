@@ -15,9 +15,35 @@ from simbench.materials.catalogue import (
     resolve_material,
 )
 from simbench.materials.spec import MaterialSpec
+from simbench.materials.spectra import (
+    KVP_RANGE,
+    Spectrum,
+    air_kerma_ugy,
+    effective_energy_kev,
+    filtered,
+    half_value_layer_mm,
+    hvl_mm_al,
+    mean_energy_kev,
+    monochromatic,
+    second_hvl_mm_al,
+    tube_spectrum,
+)
+from simbench.materials.spectrum_file import load_spectrum
 
 __all__ = [
+    "KVP_RANGE",
     "MaterialSpec",
+    "Spectrum",
+    "air_kerma_ugy",
+    "effective_energy_kev",
+    "filtered",
+    "half_value_layer_mm",
+    "hvl_mm_al",
+    "load_spectrum",
+    "mean_energy_kev",
+    "monochromatic",
+    "second_hvl_mm_al",
+    "tube_spectrum",
     "VALID_ENERGY_RANGE_KEV",
     "custom_material",
     "dilution",
