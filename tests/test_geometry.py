@@ -12,6 +12,8 @@ import re
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from simbench.errors import InputError
 from simbench.geometry import (ScannerGeometry, cell_subsamples, cone_poses, fan_angle_rad,
@@ -286,13 +288,9 @@ def test_pose_form_round_trip_gives_identical_rays(curved):
 @pytest.mark.parametrize("suffix", [".npy", ".csv"])
 def test_pose_file_round_trip(tmp_path, suffix):
     fan = _fan_for_round_trip()
-    table = pose_table(fan)
-    if suffix == ".npy":
-        np.save(tmp_path / "orbit.npy", table)
-    else:
-        header = ",".join(pose_columns(False))
-        np.savetxt(tmp_path / "orbit.csv", table, delimiter=",", header=header, comments="",
-                   fmt="%.17g")
+    from simbench.geometry.pose_file import write_pose_file
+
+    write_pose_file(fan, tmp_path / f"orbit{suffix}")
     scanner = tmp_path / "scanner.yaml"
     scanner.write_text(f"""geometry:
   type: poses
@@ -534,3 +532,17 @@ def test_resolved_settings_read_back_to_the_same_rays(text):
     again = geometry_from_text(yaml.safe_dump({"geometry": g.resolved()}, sort_keys=False))
     np.testing.assert_allclose(cell_rays(again.poses()), cell_rays(g.poses()), rtol=1e-12,
                                atol=1e-9)
+
+
+@settings(max_examples=25, deadline=None)
+@given(phi=st.floats(-7.0, 7.0), curved=st.booleans(), offset=st.floats(-3.0, 3.0),
+       sid=st.floats(100.0, 800.0), extra=st.floats(1.0, 800.0))
+def test_views_are_rotations_of_view_zero_about_z(phi, curved, offset, sid, extra):
+    p = cone_poses(sid_mm=sid, sdd_mm=sid + extra, n_cols=5, n_rows=3, pitch_u_mm=1.7,
+                   pitch_v_mm=0.9, curved=curved, offset_u_mm=offset, angles_rad=[0.0, phi])
+    rays = cell_rays(p)
+    c, s = math.cos(phi), math.sin(phi)
+    rotation = np.array([[c, -s, 0], [s, c, 0], [0, 0, 1]])  # rotation by phi about +z
+    np.testing.assert_allclose(rays[0, ..., 0:3] @ rotation.T, rays[1, ..., 0:3], atol=1e-9)
+    np.testing.assert_allclose(rays[0, ..., 3:6] @ rotation.T, rays[1, ..., 3:6], atol=1e-12)
+    np.testing.assert_allclose(rays[0, ..., 7], rays[1, ..., 7], rtol=1e-12)

@@ -123,3 +123,41 @@ def _read_csv(path: Path, parallel: bool):
         return Where(source, line_of[view], None, field)
 
     return table, place
+
+
+def write_pose_file(poses, path: str | Path) -> Path:
+    """Write the per-view poses of ``poses`` as a ``.npy`` or ``.csv`` pose file (atomically).
+
+    Parameters
+    ----------
+    poses : Poses
+    path : str or Path
+        Output file; the suffix picks the format.
+
+    Returns
+    -------
+    Path
+    """
+    import os
+    import tempfile
+
+    from simbench.geometry.explicit import pose_table
+
+    path = Path(path)
+    suffix = path.suffix.lower()
+    if suffix not in SUFFIXES:
+        raise InputError(Where(str(path)), "unknown pose file type", "a .npy or .csv file")
+    table = pose_table(poses)
+    handle, temp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=suffix, dir=path.parent)
+    os.close(handle)
+    try:
+        if suffix == ".npy":
+            np.save(temp, table)
+        else:
+            np.savetxt(temp, table, delimiter=",", header=",".join(pose_columns(poses.parallel)),
+                       comments="", fmt="%.17g")
+        os.replace(temp, path)
+    except BaseException:
+        Path(temp).unlink(missing_ok=True)
+        raise
+    return path

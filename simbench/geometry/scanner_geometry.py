@@ -44,7 +44,6 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 
 from simbench.errors import InputError, Where, warn_input
 from simbench.geometry.circular import (cone_poses, fan_angle_rad, fan_poses, parallel_poses,
