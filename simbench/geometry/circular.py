@@ -187,7 +187,7 @@ def _angles(angles_rad, n_views, arc_rad, short_arc_rad, start_angle_rad, clockw
 def _frame(angles: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     c, s = np.cos(angles), np.sin(angles)
     zero = np.zeros_like(angles)
-    d = np.stack([-s, c, zero], axis=1)
+    d = np.stack([-s, c, zero], axis=1) + 0.0
     u = np.stack([c, s, zero], axis=1)
     v = np.zeros_like(d)
     v[:, 2] = 1.0
@@ -302,8 +302,8 @@ def _divergent(*, sid_mm, sdd_mm, n_cols, pitch_u_mm, n_rows, pitch_v_mm, curved
     angles = _angles(angles_rad, n_views, arc_rad, short, start_angle_rad, clockwise,
                      include_arc_end, max_arc_rad)
     d, u, v = _frame(angles)
-    source = -sid_mm * d
-    centre = (sdd_mm - sid_mm) * d
+    source = -sid_mm * d + 0.0  # + 0.0 turns -0.0 into 0.0 (tidier printing, same values)
+    centre = (sdd_mm - sid_mm) * d + 0.0
     feed = _finite(table_feed_per_turn_mm, "table_feed_per_turn_mm")
     start_z_mm = _finite(start_z_mm, "start_z_mm")
     if feed != 0.0 or start_z_mm != 0.0:
@@ -358,7 +358,7 @@ def fan_poses(*, sid_mm: float, sdd_mm: float, n_cols: int, pitch_u_mm: float,
     --------
     >>> p = fan_poses(sid_mm=500.0, sdd_mm=1000.0, n_cols=3, pitch_u_mm=1.0, n_views=4)
     >>> p.source[0].tolist(), p.detector_centre[0].tolist()
-    ([-0.0, -500.0, -0.0], [-0.0, 500.0, 0.0])
+    ([0.0, -500.0, 0.0], [0.0, 500.0, 0.0])
     """
     return _divergent(sid_mm=sid_mm, sdd_mm=sdd_mm, n_cols=n_cols, pitch_u_mm=pitch_u_mm,
                       n_rows=1, pitch_v_mm=pitch_v_mm, curved=curved, offset_u_mm=offset_u_mm,
