@@ -10,6 +10,7 @@ from pathlib import Path
 
 import numpy as np
 
+from simbench.errors import InputError, Where
 from simbench.geometry.field_of_view import field_of_view_radius_mm
 from simbench.geometry.poses import Poses
 from simbench.geometry.rays import cell_rays
@@ -36,7 +37,9 @@ def _pick_views(poses: Poses, views) -> np.ndarray:
     if views is not None:
         chosen = np.asarray(views, dtype=np.int64).ravel()
         if chosen.size == 0 or chosen.min() < 0 or chosen.max() >= poses.n_views:
-            raise ValueError(f"views must be indices in [0, {poses.n_views - 1}]")
+            raise InputError(Where("<arguments>", field="views"),
+                             f"view indices {chosen.tolist()} are out of range",
+                             f"indices from 0 to {poses.n_views - 1}")
         return chosen
     count = min(4, poses.n_views)
     return np.unique(np.round(np.linspace(0, poses.n_views, count, endpoint=False)).astype(int))
