@@ -177,34 +177,35 @@ def rasterize_objects(xs, ys, zs, offx, offy, offz, hx, hy, hz, shape, centre, r
     nz, ny, nx = out.shape
     n_obj = shape.shape[0]
     n_sub = offx.shape[0] * offy.shape[0] * offz.shape[0]
-    for flat in prange(nz * ny * nx):
-        iz = flat // (ny * nx)
-        iy = (flat // nx) % ny
-        ix = flat % nx
-        cx, cy, cz = xs[ix], ys[iy], zs[iz]
-        cand = np.empty(n_obj, np.int64)
-        n_cand = 0
-        undecided = False
-        for k in range(n_obj):
-            state = _cell_state(k, cx, cy, cz, hx, hy, hz, shape, centre, rotation, half,
-                                params, poly_start, poly_count, poly_xy, bound)
-            if state >= 0:
-                cand[n_cand] = k
-                n_cand += 1
-                if state == 0:
-                    undecided = True
-        if not undecided:
-            out[iz, iy, ix] = _compose(cx, cy, cz, cand, n_cand, shape, centre, rotation, half,
-                                       params, mode, mu, poly_start, poly_count, poly_xy, bound)
-            continue
-        acc = 0.0
-        for a in range(offz.shape[0]):
-            for b in range(offy.shape[0]):
-                for c in range(offx.shape[0]):
-                    acc += _compose(cx + offx[c], cy + offy[b], cz + offz[a], cand, n_cand,
-                                    shape, centre, rotation, half, params, mode, mu,
-                                    poly_start, poly_count, poly_xy, bound)
-        out[iz, iy, ix] = acc / n_sub
+    for row in prange(nz * ny):
+        iz = row // ny
+        iy = row % ny
+        cand = np.empty(n_obj, np.int64)  # one scratch list per row of cells
+        for ix in range(nx):
+            cx, cy, cz = xs[ix], ys[iy], zs[iz]
+            n_cand = 0
+            undecided = False
+            for k in range(n_obj):
+                state = _cell_state(k, cx, cy, cz, hx, hy, hz, shape, centre, rotation, half,
+                                    params, poly_start, poly_count, poly_xy, bound)
+                if state >= 0:
+                    cand[n_cand] = k
+                    n_cand += 1
+                    if state == 0:
+                        undecided = True
+            if not undecided:
+                out[iz, iy, ix] = _compose(cx, cy, cz, cand, n_cand, shape, centre, rotation,
+                                           half, params, mode, mu, poly_start, poly_count,
+                                           poly_xy, bound)
+                continue
+            acc = 0.0
+            for a in range(offz.shape[0]):
+                for b in range(offy.shape[0]):
+                    for c in range(offx.shape[0]):
+                        acc += _compose(cx + offx[c], cy + offy[b], cz + offz[a], cand, n_cand,
+                                        shape, centre, rotation, half, params, mode, mu,
+                                        poly_start, poly_count, poly_xy, bound)
+            out[iz, iy, ix] = acc / n_sub
 
 
 @njit(cache=True)
