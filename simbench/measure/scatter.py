@@ -73,7 +73,7 @@ def scatter_signal(primary: np.ndarray, signal: np.ndarray, air_signal: float,
     pitch_mm : (float, float)
         Cell pitch along u and v.
     cell_axes : tuple of int
-        Axes of u (and v) in ``signal``.
+        Axes of u (and v) in ``signal`` (negative axes count from the end in both arrays).
     mu_water_per_mm : float
         Water's attenuation at the effective energy (thickness model).
 
@@ -83,7 +83,7 @@ def scatter_signal(primary: np.ndarray, signal: np.ndarray, air_signal: float,
     """
     if config.model == "none":
         return np.zeros_like(primary)
-    rows = [a + 1 for a in cell_axes]
+    rows = tuple(a if a < 0 else a + 1 for a in cell_axes)  # same axes in ``primary``
     if config.model == "centre":
         blurred = _kernel(primary, config.kernel_fwhm_mm, pitch_mm, rows)
         blurred_signal = _kernel(signal, config.kernel_fwhm_mm, pitch_mm, cell_axes)
