@@ -87,3 +87,18 @@ class Poses:
         if self.dimension == 2:
             return (self.n_views, self.n_cols)
         return (self.n_views, self.n_rows, self.n_cols)
+
+    def to_record(self) -> dict:
+        """Every pose array as plain values, for JSON sidecars (NaN angles become null)."""
+        return {
+            "parallel": bool(self.parallel),
+            "curved_detector": bool(self.curved),
+            "dimension": int(self.dimension),
+            "n_views": self.n_views, "n_rows": self.n_rows, "n_cols": self.n_cols,
+            "pitch_u_mm": float(self.pitch_u_mm), "pitch_v_mm": float(self.pitch_v_mm),
+            "col_u_mm": self.col_u_mm.tolist(), "row_v_mm": self.row_v_mm.tolist(),
+            "angles_rad": [float(a) if np.isfinite(a) else None for a in self.angles_rad],
+            "source_mm": self.source.tolist(), "direction": self.direction.tolist(),
+            "detector_centre_mm": self.detector_centre.tolist(),
+            "u_axis": self.u_axis.tolist(), "v_axis": self.v_axis.tolist(),
+        }

@@ -1,0 +1,303 @@
+"""The ``simbench`` command line: a thin layer over the modules.
+
+Every bad input ends as one line on standard error, ``simbench: error: <file>:<line>:<col>:
+<field>: <problem> (valid: ...)``, and exit code 2; warnings are one line each too.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+import simbench
+from simbench.errors import InputError, InputWarning, Where
+
+DATA = Path(__file__).resolve().parent / "data"
+
+EXAMPLES = {
+    "trace": "simbench trace shepp-logan parallel-bench-2d --energy 60 -o sino.npy",
+    "draw": "simbench draw water-ellipse-inserts -o phantom.png",
+    "scan": "simbench scan water-ellipse-inserts fan-clinical -o scan-out --seed 7",
+    "spectrum": "simbench spectrum fan-clinical -o spectrum.png",
+    "list": "simbench list",
+    "demo": "simbench demo -o simbench-demo",
+}
+
+
+# ------------------------------------------------------------------------------------------
+# Shipped files
+# ------------------------------------------------------------------------------------------
+
+
+def shipped(kind: str) -> dict[str, Path]:
+    """Shipped files of a kind (``"phantoms"`` or ``"scanners"``) by name (file stem)."""
+    folder = DATA / kind
+    return {p.stem: p for p in sorted(folder.glob("*.yaml"))}
+
+
+def resolve(name_or_path: str, kind: str) -> Path:
+    """An existing path as given, else the shipped file of that name, else the path as given
+    (so that the loader reports it missing with its own message)."""
+    path = Path(name_or_path)
+    if path.exists():
+        return path
+    files = shipped(kind)
+    stem = path.name[:-5] if path.name.endswith(".yaml") else path.name
+    if path.parent == Path(".") and stem in files:
+        return files[stem]
+    return path
+
+
+# ------------------------------------------------------------------------------------------
+# Commands
+# ------------------------------------------------------------------------------------------
+
+
+def _load(phantom_arg: str | None, scanner_arg: str | None):
+    from simbench.phantom import load_phantom
+    from simbench.scanner import load_scanner
+
+    phantom = load_phantom(resolve(phantom_arg, "phantoms")) if phantom_arg else None
+    scanner = load_scanner(resolve(scanner_arg, "scanners")) if scanner_arg else None
+    if phantom is not None and scanner is not None:
+        dim = scanner.geometry.poses().dimension
+        if phantom.dimension == 3 and dim == 2:
+            raise InputError(Where(str(scanner.source), field="geometry"),
+                             f"a 2-D scanner cannot scan the 3-D phantom '{phantom.name}'",
+                             "a scanner with rows (parallel stack, cone) for 3-D phantoms")
+    return phantom, scanner
+
+
+def _check_output(path: str, suffix: str, option: str = "-o") -> Path:
+    out = Path(path)
+    if out.suffix.lower() != suffix:
+        raise InputError(Where("<command line>", field=option),
+                         f"output '{path}' does not end in {suffix}", f"a file name ending in {suffix}")
+    if out.exists() and out.is_dir():
+        raise InputError(Where("<command line>", field=option), f"output '{path}' is a directory",
+                         f"a file name ending in {suffix}")
+    return out
+
+
+def cmd_trace(args: argparse.Namespace) -> int:
+    from simbench.atomic import write_json, write_npy
+    from simbench.materials import mu_table
+    from simbench.trace import edge_truncation, line_integrals, trace
+
+    out = _check_output(args.output, ".npy")
+    energy = _energy_option(args.energy)
+    phantom, scanner = _load(args.phantom, args.scanner)
+    poses = scanner.geometry.poses()
+    started = time.perf_counter()
+    path_lengths = trace(phantom, poses)
+    seconds = time.perf_counter() - started
+    _warn_truncation(path_lengths, scanner, edge_truncation)
+    mu = mu_table(phantom.materials, [energy])[:, 0]
+    sinogram = line_integrals(path_lengths, mu)
+    write_npy(out, np.ascontiguousarray(sinogram, dtype=np.float64))
+    sidecar = out.with_suffix(".json")
+    write_json(sidecar, {
+        "what": "exact monochromatic line integrals (dimensionless), float64",
+        "layout": "(n_views, n_cols)" if poses.dimension == 2 else "(n_views, n_rows, n_cols)",
+        "shape": list(sinogram.shape),
+        "energy_kev": energy,
+        "phantom": {"name": phantom.name, "file": str(phantom.source)},
+        "materials": [{"name": m.name, "mu_per_mm": float(v)} for m, v in zip(phantom.materials, mu)],
+        "scanner": {"name": scanner.name, "file": str(scanner.source)},
+        "geometry": poses.to_record(),
+        "trace_seconds": round(seconds, 3),
+        "simbench_version": simbench.__version__,
+        "caution": simbench.CAUTION,
+    })
+    print(f"wrote {out} {tuple(sinogram.shape)} and {sidecar} "
+          f"(line integrals at {energy:g} keV, max {sinogram.max():.4g}, traced in {seconds:.2f} s)")
+    return 0
+
+
+def cmd_draw(args: argparse.Namespace) -> int:
+    from simbench.phantom import load_phantom
+    from simbench.report.drawing import draw_phantom
+
+    out = _check_output(args.output, ".png")
+    energy = _energy_option(args.energy)
+    phantom = load_phantom(resolve(args.phantom, "phantoms"))
+    draw_phantom(phantom, out, energy_kev=energy, pixels=args.pixels)
+    print(f"wrote {out} ({phantom.name}, mu at {energy:g} keV)")
+    return 0
+
+
+def cmd_scan(args: argparse.Namespace) -> int:
+    from simbench.execute.scan import run_scan
+
+    phantom, scanner = _load(args.phantom, args.scanner)
+    if scanner.physics is None:
+        raise InputError(Where(str(scanner.source), field="source"),
+                         "the scanner file has no source section, so it cannot be scanned",
+                         "add a source section (energy or kvp) and an exposure section")
+    summary = run_scan(phantom, scanner, Path(args.output), seed=args.seed,
+                       noise=not args.noise_free)
+    print(summary)
+    return 0
+
+
+def cmd_spectrum(args: argparse.Namespace) -> int:
+    from simbench.report.spectrum_figure import plot_spectrum
+    from simbench.scanner import load_scanner
+
+    out = _check_output(args.output, ".png")
+    scanner = load_scanner(resolve(args.scanner, "scanners"))
+    if scanner.physics is None:
+        raise InputError(Where(str(scanner.source), field="source"),
+                         "the scanner file has no source section", "add a source section")
+    spectrum = scanner.physics.spectrum
+    plot_spectrum(spectrum, out)
+    print(f"wrote {out}")
+    print(f"mean energy {spectrum.mean_energy_kev:.1f} keV, first HVL {spectrum.hvl_mm_al:.2f} mm Al, "
+          f"effective energy {spectrum.effective_energy_kev:.1f} keV")
+    return 0
+
+
+def cmd_list(args: argparse.Namespace) -> int:
+    from simbench.materials import material_names
+
+    print("shipped phantoms:  " + ", ".join(shipped("phantoms")))
+    print("shipped scanners:  " + ", ".join(shipped("scanners")))
+    print("catalogue materials: " + ", ".join(material_names()))
+    return 0
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    out = Path(args.output)
+    print(simbench.CAUTION)
+    steps = [
+        ["draw", "water-ellipse-inserts", "-o", str(out / "water-ellipse-inserts.png")],
+        ["draw", "cone-beam-3d", "-o", str(out / "cone-beam-3d.png")],
+        ["trace", "shepp-logan", "parallel-bench-2d", "--energy", "60", "-o", str(out / "shepp-logan-sinogram.npy")],
+        ["trace", "water-ellipse-inserts", "fan-clinical", "--energy", "70", "-o", str(out / "water-ellipse-fan.npy")],
+    ]
+    for step in steps:
+        print("$ simbench " + " ".join(step))
+        code = main(step)
+        if code:
+            return code
+    from simbench.report.sinogram_figure import draw_sinogram
+
+    for name in ("shepp-logan-sinogram", "water-ellipse-fan"):
+        draw_sinogram(np.load(out / f"{name}.npy"), out / f"{name}.png", title=name)
+        print(f"wrote {out / (name + '.png')}")
+    return 0
+
+
+# ------------------------------------------------------------------------------------------
+# Helpers
+# ------------------------------------------------------------------------------------------
+
+
+def _energy_option(value: str) -> float:
+    from simbench.spec import parse_energy
+
+    return parse_energy(value, Where("<command line>", field="--energy"))
+
+
+def _warn_truncation(path_lengths, scanner, edge_truncation) -> None:
+    fraction = edge_truncation(path_lengths)
+    if fraction > 0:
+        warnings.warn(
+            f"{scanner.source}: geometry: the detector does not cover the object in "
+            f"{100 * fraction:.1f} % of views (edge cells see it); projections are truncated",
+            InputWarning, stacklevel=2)
+
+
+class _Parser(argparse.ArgumentParser):
+    """An argument parser whose errors are one line and exit 2."""
+
+    def error(self, message: str) -> None:  # type: ignore[override]
+        sys.stderr.write(f"{self.prog}: error: {message} (see '{self.prog} --help')\n")
+        raise SystemExit(2)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(
+        prog="simbench",
+        description="A virtual CT scanner and test bench: exact line integrals of phantoms, "
+                    "measurement physics, and scoring of processing code against the truth. "
+                    + simbench.CAUTION,
+        epilog="Shipped phantoms and scanners can be named without a path (see 'simbench list').",
+    )
+    parser.add_argument("--version", action="version", version=f"simbench {simbench.__version__}")
+    commands = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+
+    def command(name: str, help_text: str) -> argparse.ArgumentParser:
+        sub = commands.add_parser(name, help=help_text, description=help_text,
+                                  epilog=f"example: {EXAMPLES[name]}")
+        return sub
+
+    p = command("trace", "Trace a phantom through a scanner's geometry into exact monochromatic "
+                         "line integrals (float64 .npy plus a JSON sidecar of the geometry).")
+    p.add_argument("phantom", help="phantom file or shipped phantom name")
+    p.add_argument("scanner", help="scanner file or shipped scanner name")
+    p.add_argument("--energy", required=True, metavar="KEV", help="reference energy in keV")
+    p.add_argument("-o", "--output", required=True, metavar="FILE.npy", help="output file")
+    p.set_defaults(run=cmd_trace)
+
+    p = command("draw", "Draw a phantom (central slices for 3-D) with object labels and a scale bar.")
+    p.add_argument("phantom", help="phantom file or shipped phantom name")
+    p.add_argument("-o", "--output", required=True, metavar="FILE.png", help="output PNG")
+    p.add_argument("--energy", default="60", metavar="KEV", help="energy for mu, keV (default 60)")
+    p.add_argument("--pixels", type=int, default=512, metavar="N", help="image size (default 512)")
+    p.set_defaults(run=cmd_draw)
+
+    p = command("scan", "Scan a phantom: raw counts, flat and dark frames and projections, "
+                        "with a JSON sidecar of every physics setting.")
+    p.add_argument("phantom", help="phantom file or shipped phantom name")
+    p.add_argument("scanner", help="scanner file or shipped scanner name (with a source section)")
+    p.add_argument("-o", "--output", required=True, metavar="DIR", help="output folder")
+    p.add_argument("--seed", type=int, default=0, metavar="N", help="root seed (default 0)")
+    p.add_argument("--noise-free", action="store_true", help="expected values, no random noise")
+    p.set_defaults(run=cmd_scan)
+
+    p = command("spectrum", "Plot a scanner's source spectrum; print mean energy and HVL.")
+    p.add_argument("scanner", help="scanner file or shipped scanner name")
+    p.add_argument("-o", "--output", required=True, metavar="FILE.png", help="output PNG")
+    p.set_defaults(run=cmd_spectrum)
+
+    p = command("list", "List the shipped phantoms and scanners and the catalogue materials.")
+    p.set_defaults(run=cmd_list)
+
+    p = command("demo", "Draw and trace shipped phantoms into a folder: the quickest look.")
+    p.add_argument("-o", "--output", default="simbench-demo", metavar="DIR",
+                   help="output folder (default simbench-demo)")
+    p.set_defaults(run=cmd_demo)
+    return parser
+
+
+def _one_line_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    text = " ".join(str(message).split())
+    sys.stderr.write(f"simbench: warning: {text}\n")
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the command line; returns the exit code (0 ok, 2 bad input)."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return 0
+    previous = warnings.showwarning
+    warnings.showwarning = _one_line_warning
+    try:
+        return int(args.run(args) or 0)
+    except InputError as error:
+        sys.stderr.write(f"simbench: error: {error}\n")
+        return 2
+    finally:
+        warnings.showwarning = previous
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

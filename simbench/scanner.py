@@ -1,0 +1,86 @@
+"""Scanner files: one YAML file describing a scanner's geometry and its measurement physics.
+
+A scanner file has the top-level keys ``name``, ``description`` (optional), ``units`` (unit of
+bare-number lengths, ``mm`` or ``cm``, default mm), ``geometry`` (see docs/geometry.md) and the
+physics sections ``source``, ``exposure``, ``detector`` and ``scatter`` (optional; the tracer
+needs only the geometry). Each section is read by the module that owns the concern; this module
+only dispatches, so the file format has one reader per section.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from simbench.errors import InputError
+from simbench.spec import Section, load_yaml, parse_yaml_text
+
+TOP_LEVEL_KEYS = ("name", "description", "units", "geometry", "source", "exposure", "detector",
+                  "scatter")
+
+
+@dataclass(frozen=True, eq=False)
+class Scanner:
+    """A parsed, validated scanner.
+
+    Attributes
+    ----------
+    name : str
+    description : str
+    geometry : simbench.geometry.ScannerGeometry
+        Geometry settings; ``geometry.poses()`` gives the per-view pose form.
+    physics : object or None
+        The source, exposure, detector and scatter settings
+        (:class:`simbench.measure.config.Physics`), None when the file has no ``source``.
+    source : str
+        File the scanner came from.
+    """
+
+    name: str
+    description: str
+    geometry: Any
+    physics: Any
+    source: str
+
+
+def load_scanner(path: str | Path) -> Scanner:
+    """Read and validate a scanner file.
+
+    Raises
+    ------
+    InputError
+        One line naming the file, line, column and field of the first problem.
+    """
+    return _read(load_yaml(path, "scanner file"), str(path))
+
+
+def parse_scanner_text(text: str, source: str = "<text>") -> Scanner:
+    """Read a scanner from YAML text (for tests and inline scenarios)."""
+    return _read(parse_yaml_text(text, source), source)
+
+
+def _read(document: Any, source: str) -> Scanner:
+    if document is None:
+        raise InputError(source, "scanner file is empty", "a mapping with name and geometry")
+    root = Section.root(document, source)
+    root.check_keys(TOP_LEVEL_KEYS, required=("name", "geometry"))
+    units = root.string("units", "mm", choices=("mm", "cm"))
+    root = Section(root.node, root.where, units)
+    name = root.string("name")
+    description = root.string("description", "")
+
+    from simbench.geometry import parse_geometry
+
+    geometry = parse_geometry(root.section("geometry"))
+    physics = None
+    if root.has("source"):
+        from simbench.measure.config import parse_physics
+
+        physics = parse_physics(root)
+    else:
+        for key in ("exposure", "detector", "scatter"):
+            if root.has(key):
+                raise root.error(key, f"'{key}' given without a 'source' section",
+                                 "add a source section (energy or kvp) or remove this one")
+    return Scanner(name, description, geometry, physics, source)
