@@ -139,8 +139,9 @@ def cmd_scan(args: argparse.Namespace) -> int:
         raise InputError(Where(str(scanner.source), field="source"),
                          "the scanner file has no source section, so it cannot be scanned",
                          "add a source section (energy or kvp) and an exposure section")
+    energy = None if args.energy is None else _energy_option(args.energy)
     summary = run_scan(phantom, scanner, Path(args.output), seed=args.seed,
-                       noise=not args.noise_free)
+                       noise=not args.noise_free, reference_energy_kev=energy)
     print(summary)
     return 0
 
@@ -259,6 +260,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("-o", "--output", required=True, metavar="DIR", help="output folder")
     p.add_argument("--seed", type=int, default=0, metavar="N", help="root seed (default 0)")
     p.add_argument("--noise-free", action="store_true", help="expected values, no random noise")
+    p.add_argument("--energy", default=None, metavar="KEV",
+                   help="reference energy of the truth line integrals, keV (default: the source "
+                        "energy, or the mean energy of the detected air spectrum)")
     p.set_defaults(run=cmd_scan)
 
     p = command("spectrum", "Plot a scanner's source spectrum; print mean energy and HVL.")

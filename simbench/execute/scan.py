@@ -33,7 +33,7 @@ def scan_identity(phantom, scanner, realization: int = 0) -> tuple:
 
 
 def run_scan(phantom, scanner, out: Path, *, seed: int = 0, noise: bool = True,
-             realization: int = 0) -> str:
+             realization: int = 0, reference_energy_kev: float | None = None) -> str:
     """Trace ``phantom`` through ``scanner``, apply its physics and write the scan to ``out``.
 
     Parameters
@@ -49,6 +49,10 @@ def run_scan(phantom, scanner, out: Path, *, seed: int = 0, noise: bool = True,
         False for expected values (no counting or electronic noise).
     realization : int
         Realization number (part of the identity).
+    reference_energy_kev : float, optional
+        Energy of the exact line integrals written as truth. Default: the source energy of
+        a monochromatic source, else the mean energy of the detected air spectrum (rounded to
+        0.1 keV), which is recorded in ``scan.json``.
 
     Returns
     -------
@@ -99,8 +103,10 @@ def run_scan(phantom, scanner, out: Path, *, seed: int = 0, noise: bool = True,
                      spectrum=user_spectrum, rng=rng, noise=noise)
     measure_seconds = time.perf_counter() - started
 
-    reference_kev = float(result.metadata.get("reference_energy_kev",
-                                              result.metadata.get("mean_energy_kev", 60.0)))
+    if reference_energy_kev is None:
+        reference_energy_kev = (src.energy_kev if src.kind == "monochromatic"
+                                else round(float(result.metadata["mean_detected_energy_kev"]), 1))
+    reference_kev = float(reference_energy_kev)
     mu_ref = mu_table(phantom.materials, [reference_kev])[:, 0]
     centre_lengths = lengths if spot is None else lengths.mean(axis=-1)
     truth = line_integrals(centre_lengths, mu_ref)
