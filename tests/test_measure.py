@@ -319,3 +319,38 @@ def test_error_names_line_and_column():
     with pytest.raises(InputError) as err:
         parse_exposure(_section("# exposure\nair_counts: -5\n"))
     assert str(err.value).startswith("scanner.yaml:2:13: air_counts:")
+
+
+@pytest.mark.parametrize("text, needle", [
+    ("source: {energy: 60}\nexposure: {mas_per_view: 1}", "no tube output per mAs"),
+    ("source: {kvp: 80}\nexposure: {air_counts: 1e4}\n"
+     "detector: {type: photon-counting, thresholds: [90]}", "not below the source's highest"),
+    ("source: {kvp: 120, anode_angle: 45}\nexposure: {air_counts: 1e4}", "anode angle 45 deg"),
+    ("source: {kvp: 120, energy_bin: 5 keV}\nexposure: {air_counts: 1e4}", "energy bin 5 keV"),
+    ("exposure: {air_counts: 1e4}", "missing required field 'source'"),
+])
+def test_bad_physics_across_sections(text, needle):
+    from simbench.measure import parse_physics
+
+    with pytest.raises(InputError) as err:
+        parse_physics(_section(text))
+    assert needle in str(err.value) and "\n" not in str(err.value)
+
+
+def test_tube_source_through_the_spectrum_model():
+    # 120 kVp tube with mAs exposure: the flat equals the model's fluence x (1000/SDD)^2 x area x
+    # mAs (tube-output model), and the water projection shows beam hardening (p/t falls).
+    from simbench.materials import get_material, spectra
+    from simbench.measure import parse_physics
+
+    phys = parse_physics(_section(
+        "source: {kvp: 120, filtration: [{material: aluminium, thickness: 2.5 mm}], "
+        "energy_bin: 2 keV}\nexposure: {tube_current_ma: 100, view_time_ms: 1}"))
+    spec = spectra.tube_spectrum(120, anode_angle_deg=12.0, filtration=(("aluminium", 2.5),),
+                                 bin_kev=2.0)
+    lengths = np.array([0.0, 100.0, 200.0, 300.0])[None, None, :]
+    m = measure(lengths, [get_material("water")], phys, pitch_mm=(1.0, 1.0), sdd_mm=1000.0,
+                noise=False, dtype=np.float64)
+    assert m.flat[0] == pytest.approx(spec.fluence.sum() * 1.0 * 1.0 * 0.1, rel=1e-12)
+    slope = m.projections[0, 1:] / lengths[0, 0, 1:]
+    assert np.all(np.diff(slope) < 0)

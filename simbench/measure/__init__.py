@@ -102,9 +102,11 @@ def source_spectrum(source: SourceConfig, user_spectrum: SpectrumArrays | None =
     Parameters
     ----------
     source : SourceConfig
-    user_spectrum : SpectrumArrays, optional
-        The content of a ``spectrum_file`` source (read by the caller); its filtration is
-        applied here.
+    user_spectrum : SpectrumArrays or simbench.materials.spectra.Spectrum, optional
+        The content of a ``spectrum_file`` source (read by the caller with
+        :func:`simbench.materials.spectrum_file.load_spectrum`); its filtration is applied
+        here. Anything with ``energies_kev`` and ``fluence`` arrays will do; an ``absolute``
+        attribute that is False refuses mAs exposures.
     need_absolute : bool
         Whether the fluence must be absolute (mAs exposures).
 
@@ -112,6 +114,10 @@ def source_spectrum(source: SourceConfig, user_spectrum: SpectrumArrays | None =
     -------
     SpectrumArrays
     """
+    if need_absolute and not getattr(user_spectrum, "absolute", True):
+        raise InputError(Where("scanner", field="exposure"),
+                         "an mAs exposure needs a spectrum in photons per mm^2 per mAs at 1 m, "
+                         "but the given spectrum is relative", "give 'air_counts'")
     if source.kind == "file":
         if user_spectrum is None:
             raise ValueError("a spectrum-file source needs the file's spectrum (user_spectrum)")
@@ -128,16 +134,17 @@ def source_spectrum(source: SourceConfig, user_spectrum: SpectrumArrays | None =
         return SpectrumArrays(np.asarray(user_spectrum.energies_kev, dtype=np.float64),
                               np.asarray(user_spectrum.fluence, dtype=np.float64))
     if source.kind == "monochromatic":
-        if not need_absolute:
-            return SpectrumArrays(np.array([source.energy_kev]), np.array([1.0]))
-        from simbench.materials import spectra
-
-        spec = spectra.monochromatic(source.energy_kev)
+        if need_absolute:
+            raise InputError(Where("scanner", field="exposure"),
+                             "a monochromatic source has no tube output per mAs",
+                             "give 'air_counts' for a monochromatic source")
+        return SpectrumArrays(np.array([source.energy_kev]), np.array([1.0]))
     else:
         from simbench.materials import spectra
 
         spec = spectra.tube_spectrum(source.kvp, anode_angle_deg=source.anode_angle_deg,
-                                     filtration=tuple(source.filtration))
+                                     filtration=tuple(source.filtration),
+                                     bin_kev=source.energy_bin_kev)
     return SpectrumArrays(np.asarray(spec.energies_kev, dtype=np.float64),
                           np.asarray(spec.fluence, dtype=np.float64))
 

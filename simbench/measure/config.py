@@ -9,10 +9,10 @@ Scanner-file keys (every unit explicit or stated here)::
     source:                      # one of: energy | kvp | spectrum_file
       energy: 60 keV             # monochromatic source
       kvp: 120                   # tube voltage in kV (peak), tube-spectrum model
-      anode_angle: 12 deg
+      anode_angle: 12 deg        # 5 to 30 deg
       filtration:                # list of material + thickness
         - {material: Al, thickness: 2 mm}
-      energy_bin: 1 keV          # width of the spectrum's energy bins
+      energy_bin: 1 keV          # width of the spectrum's energy bins (0.1 to 2 keV)
       spectrum_file: spectrum.csv  # two columns: energy in keV, relative fluence
       focal_spot: [1.0 mm, 1.0 mm] # width of the focal spot along u and v (or one length)
       focal_spot_samples: [3, 3]   # sub-samples of the spot along u and v (or one number)
@@ -52,11 +52,16 @@ Scanner-file keys (every unit explicit or stated here)::
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from typing import Any
 
 from simbench.errors import InputError, Where
 from simbench.spec import Section, check_integer, check_number, parse_energy, parse_length
+
+#: anode angles (degrees) and spectrum bin widths (keV) the tube-spectrum model accepts
+ANODE_ANGLE_RANGE_DEG = (5.0, 30.0)
+ENERGY_BIN_RANGE_KEV = (0.1, 2.0)
 
 #: the most photon-counting thresholds (energy bins) a detector may have
 MAX_THRESHOLDS = 8
@@ -349,13 +354,16 @@ def parse_source(section: Section) -> SourceConfig:
         raise section.error("kvp", f"tube voltage {kvp:g} kV is outside the tube model's range",
                             f"a kVp from {lo:g} to {hi:g}")
     anode = section.angle("anode_angle", default=SourceConfig.anode_angle_rad)
-    if not 0.0 < anode < 1.5707963267948966:
-        raise section.error("anode_angle", "anode angle must be between 0 and 90 degrees",
-                            "an angle such as 12 deg")
+    lo_deg, hi_deg = ANODE_ANGLE_RANGE_DEG
+    if not lo_deg <= anode * 180.0 / math.pi <= hi_deg:
+        raise section.error("anode_angle", f"anode angle {anode * 180.0 / math.pi:g} deg is "
+                            "outside the tube model's range",
+                            f"an angle from {lo_deg:g} to {hi_deg:g} deg, e.g. 12 deg")
     ebin = section.energy("energy_bin", default=1.0)
-    if ebin > kvp / 4:
-        raise section.error("energy_bin", f"energy bin {ebin:g} keV is too coarse for {kvp:g} kVp",
-                            f"at most {kvp / 4:g} keV")
+    lo_bin, hi_bin = ENERGY_BIN_RANGE_KEV
+    if not lo_bin <= ebin <= hi_bin:
+        raise section.error("energy_bin", f"energy bin {ebin:g} keV is outside the tube "
+                            "model's range", f"a width from {lo_bin:g} to {hi_bin:g} keV")
     return SourceConfig("tube", kvp=kvp, anode_angle_rad=anode, filtration=tuple(filtration),
                         energy_bin_kev=ebin, **common)
 
@@ -594,12 +602,37 @@ def parse_physics(section: Section) -> Physics:
     """
     detector = section.section("detector", default=None)
     scatter = section.section("scatter", default=None)
-    return Physics(
+    physics = Physics(
         source=parse_source(section.section("source")),
         exposure=parse_exposure(section.section("exposure")),
         detector=DetectorConfig() if detector is None else parse_detector(detector),
         scatter=ScatterConfig() if scatter is None else parse_scatter(scatter),
     )
+    check_physics(physics, section)
+    return physics
+
+
+def check_physics(physics: Physics, section: Section) -> None:
+    """Checks across sections: an mAs exposure needs a tube; thresholds below the kVp.
+
+    Parameters
+    ----------
+    physics : Physics
+    section : Section
+        The scanner mapping holding the ``source``, ``exposure`` and ``detector`` sections.
+    """
+    src, det = physics.source, physics.detector
+    if physics.exposure.mas_per_view is not None and src.kind == "monochromatic":
+        exposure = section.section("exposure")
+        key = "mas_per_view" if exposure.has("mas_per_view") else "tube_current_ma"
+        raise exposure.error(key, "a monochromatic source has no tube output per mAs",
+                             "give 'air_counts' for a monochromatic source")
+    top = src.kvp if src.kind == "tube" else src.energy_kev if src.kind == "monochromatic" \
+        else None
+    if det.photon_counting and top is not None and det.thresholds_kev[0] >= top:
+        raise section.section("detector").error(
+            "thresholds", f"the lowest threshold {det.thresholds_kev[0]:g} keV is not below the "
+            f"source's highest energy {top:g} keV", f"thresholds below {top:g} keV")
 
 
 def describe(physics: Physics) -> dict[str, Any]:
