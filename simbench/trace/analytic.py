@@ -26,7 +26,7 @@ from simbench.trace.shapes import (
 # Culling windows
 # --------------------------------------------------------------------------------------------
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _angle_window(x0, y0, radius):
     """Range of ``atan(x / y)`` over the disk of centre (x0, y0) and radius ``radius``.
 
@@ -43,12 +43,12 @@ def _angle_window(x0, y0, radius):
     return True, theta - beta, theta + beta, False
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _dot(a, b):
     return a[0] * b[0] + a[1] * b[1] + a[2] * b[2]
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _object_window(parallel, s, d, dc, uu, vv, c, radius, prism):
     """Conservative window (u_lo, u_hi, v_lo, v_hi) of a bounding sphere: parallel or flat.
 
@@ -120,7 +120,7 @@ def _object_window(parallel, s, d, dc, uu, vv, c, radius, prism):
     return u_lo, u_hi, a_v + h * math.tan(blo), a_v + h * math.tan(bhi)
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _curved_window(s_centre, spot_u, spot_v, dc, uu, vv, c, radius, prism):
     """Window on an equiangular detector for a ray emitted at ``source + su U + sv V``.
 
@@ -169,7 +169,7 @@ def _curved_window(s_centre, spot_u, spot_v, dc, uu, vv, c, radius, prism):
     return u_lo, u_hi, v_lo, v_hi
 
 
-@njit(parallel=True, cache=True)
+@njit(parallel=True, cache=True, error_model="numpy")
 def culling_windows(parallel, curved, source, direction, detector_centre, u_axis, v_axis,
                     views, spot_u, spot_v, centre, bound_radius, is_prism, out):
     """Fill ``out[i, f, k] = (u_lo, u_hi, v_lo, v_hi)`` for chunk view i, spot f, object k."""
@@ -212,7 +212,7 @@ def culling_windows(parallel, curved, source, direction, detector_centre, u_axis
 # --------------------------------------------------------------------------------------------
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always", error_model="numpy")
 def _covered_insert(cs, ce, ncov, a, b):
     """Insert [a, b] into the sorted disjoint union ``cs[:ncov], ce[:ncov]``; new count."""
     i = 0
@@ -244,7 +244,7 @@ def _covered_insert(cs, ce, ncov, a, b):
     return ncov - shift
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always", error_model="numpy")
 def trace_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, u, cand, n_cand, win,
               shape, centre, rotation, half_sizes, params, mode, material,
               poly_start, poly_count, poly_xy, t0buf, t1buf, kbuf, cs, ce, crossings, acc):
@@ -333,7 +333,7 @@ def trace_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, u, cand, n_cand, win,
             ncov = _covered_insert(cs, ce, ncov, a, b)
 
 
-@njit(parallel=True, cache=True)
+@njit(parallel=True, cache=True, error_model="numpy")
 def trace_objects_chunk(parallel, curved, source, direction, detector_centre, u_axis, v_axis,
                         views, out_view0, col_u, row_v, cell_du, cell_dv, spot_u, spot_v,
                         windows, shape, centre, rotation, half_sizes, params, mode, material,

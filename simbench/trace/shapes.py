@@ -20,7 +20,7 @@ from numba import njit
 _MISS = (np.inf, -np.inf)
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always", error_model="numpy")
 def _quadratic_roots(a, b_half, c):
     """Real roots (r0 <= r1) of ``a t^2 + 2 b_half t + c = 0``, stable form; ok=False if none.
 
@@ -44,7 +44,7 @@ def _quadratic_roots(a, b_half, c):
     return True, r0, r1
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always", error_model="numpy")
 def ellipsoid_interval(ox, oy, oz, dx, dy, dz, a, b, c):
     """Chord of ``(x/a)^2 + (y/b)^2 + (z/c)^2 <= 1``.
 
@@ -65,7 +65,7 @@ def ellipsoid_interval(ox, oy, oz, dx, dy, dz, a, b, c):
     return r0, r1
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always", error_model="numpy")
 def ellipse_prism_interval(ox, oy, dx, dy, a, b):
     """Chord of the infinite elliptic prism ``(x/a)^2 + (y/b)^2 <= 1`` (any z)."""
     sx, sy = ox / a, oy / b
@@ -84,7 +84,7 @@ def ellipse_prism_interval(ox, oy, dx, dy, a, b):
     return r0, r1
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always", error_model="numpy")
 def _slab(o, d, h, t0, t1):
     """Clip ``[t0, t1]`` to the slab ``|o + t d| <= h``."""
     if d != 0.0:
@@ -101,7 +101,7 @@ def _slab(o, d, h, t0, t1):
     return t0, t1
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always", error_model="numpy")
 def box_interval(ox, oy, oz, dx, dy, dz, a, b, c):
     """Chord of ``|x| <= a, |y| <= b, |z| <= c`` by slab clipping (Kay and Kajiya)."""
     t0, t1 = _slab(ox, dx, a, -np.inf, np.inf)
@@ -110,7 +110,7 @@ def box_interval(ox, oy, oz, dx, dy, dz, a, b, c):
     return t0, t1
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always", error_model="numpy")
 def rectangle_prism_interval(ox, oy, dx, dy, a, b):
     """Chord of the infinite prism ``|x| <= a, |y| <= b`` (any z)."""
     t0, t1 = _slab(ox, dx, a, -np.inf, np.inf)
@@ -118,7 +118,7 @@ def rectangle_prism_interval(ox, oy, dx, dy, a, b):
     return t0, t1
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always", error_model="numpy")
 def cylinder_interval(ox, oy, oz, dx, dy, dz, a, b, c):
     """Chord of the finite elliptic cylinder ``(x/a)^2 + (y/b)^2 <= 1, |z| <= c``."""
     t0, t1 = ellipse_prism_interval(ox, oy, dx, dy, a, b)
@@ -127,7 +127,7 @@ def cylinder_interval(ox, oy, oz, dx, dy, dz, a, b, c):
     return _slab(oz, dz, c, t0, t1)
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always", error_model="numpy")
 def cone_interval(ox, oy, oz, dx, dy, dz, r_low, r_high, c):
     """Chord of the truncated cone ``x^2 + y^2 <= r(z)^2, |z| <= c`` with both caps.
 
@@ -177,7 +177,7 @@ def cone_interval(ox, oy, oz, dx, dy, dz, r_low, r_high, c):
     return b0, b1
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always", error_model="numpy")
 def polygon_prism_intervals(ox, oy, dx, dy, poly_xy, start, count, crossings,
                             out_t0, out_t1, n_out):
     """Intervals of the ray inside an infinite polygon prism (simple polygon, any winding).

@@ -24,7 +24,7 @@ from numba import njit, prange
 from simbench.geometry.rays import detector_ray
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _first_plane(lo, spacing, index, direction, origin):
     """Parameter of the next plane crossed along one axis from voxel ``index``."""
     if direction > 0.0:
@@ -34,7 +34,7 @@ def _first_plane(lo, spacing, index, direction, origin):
     return np.inf
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def siddon_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, lo, spacing, use_z,
                material_volume, mu_volume, use_mu, acc):
     """Accumulate one ray's voxel path lengths into ``acc``.
@@ -134,7 +134,7 @@ def siddon_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, lo, spacing, use_z,
             tnz = _first_plane(lo[2], spacing[2], iz, dz, oz)
 
 
-@njit(parallel=True, cache=True)
+@njit(parallel=True, cache=True, error_model="numpy")
 def trace_voxels_chunk(parallel, curved, source, direction, detector_centre, u_axis, v_axis,
                        views, out_view0, col_u, row_v, cell_du, cell_dv, spot_u, spot_v,
                        lo, spacing, use_z, material_volume, mu_volume, use_mu, n_blocks, out):

@@ -300,7 +300,7 @@ def trace(phantom: Phantom, poses: Poses, *, cell_samples=None, spot_samples=Non
                                                   spot_samples, views)
     plan = _Plan(phantom, poses, cells, spots, n_mat)
     n_views = view_idx.shape[0]
-    full = np.zeros((n_mat, n_views, poses.n_rows, poses.n_cols, plan.n_sub))
+    full = np.empty((n_mat, n_views, poses.n_rows, poses.n_cols, plan.n_sub))
     per_view = n_mat * poses.n_rows * poses.n_cols * plan.n_sub * 8
     step = _chunk_views(n_views, per_view, chunk_views)
     for v0 in range(0, n_views, step):
@@ -331,7 +331,7 @@ def iter_trace(phantom: Phantom, poses: Poses, *, cell_samples=None, spot_sample
     sub = cell_samples is not None or spot_samples is not None
     for v0 in range(0, view_idx.shape[0], step):
         chunk = view_idx[v0:v0 + step]
-        out = np.zeros((n_mat, chunk.shape[0], poses.n_rows, poses.n_cols, plan.n_sub))
+        out = np.empty((n_mat, chunk.shape[0], poses.n_rows, poses.n_cols, plan.n_sub))
         plan.run(chunk, out, 0)
         yield chunk, out.reshape(_shape(poses, n_mat, chunk.shape[0], plan.n_sub, sub))
 
