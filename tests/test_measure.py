@@ -354,3 +354,13 @@ def test_tube_source_through_the_spectrum_model():
     assert m.flat[0] == pytest.approx(spec.fluence.sum() * 1.0 * 1.0 * 0.1, rel=1e-12)
     slope = m.projections[0, 1:] / lengths[0, 0, 1:]
     assert np.all(np.diff(slope) < 0)
+
+
+def test_kernel_exponential_matches_numpy():
+    # The forward kernel's vectorised exp(-tau) against numpy.exp (reference library).
+    from simbench.measure.forward import exp_neg
+
+    tau = np.concatenate([np.linspace(0.0, 700.0, 70001),
+                          np.random.default_rng(0).uniform(0.0, 30.0, 10000)])
+    assert np.max(np.abs(exp_neg(tau) / np.exp(-tau) - 1.0)) < 3e-14
+    assert exp_neg(np.array([0.0]))[0] == 1.0

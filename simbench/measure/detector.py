@@ -63,11 +63,14 @@ def sensor_material(detector: DetectorConfig):
 
     from simbench.materials import custom_material, get_material
 
+    from simbench.measure.config import SENSOR_DENSITY_G_CM3
+
     try:
         spec = get_material(detector.material)
     except KeyError:
+        density = detector.density_g_cm3 or SENSOR_DENSITY_G_CM3.get(detector.material, 0.0)
         return custom_material(detector.material, formula=detector.material,
-                               density_g_cm3=detector.density_g_cm3)
+                               density_g_cm3=density)
     if detector.density_g_cm3 > 0:
         spec = replace(spec, density_g_cm3=detector.density_g_cm3)
     return spec

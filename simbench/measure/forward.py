@@ -11,8 +11,11 @@ are averaged in *intensity*, after the exponential, which is what a detector doe
 path lengths instead would hide the non-linear partial-volume effect).
 
 The kernel runs in numba over chunks of cells with float64 accumulation. Each cell's sum has a
-fixed order, so the result does not depend on the number of threads. Rays that cross no
-material take a precomputed shortcut (exp(0) = 1, exactly).
+fixed order (fixed at compile time), so the result does not depend on the number of threads.
+Rays that cross no material take a precomputed shortcut (exp(0) = 1, exactly). The exponential
+is evaluated in a vectorisable form (:func:`exp_neg`, relative error below 3e-14) and the
+kernel is compiled with ``fastmath``, which lets the sums over energy be vectorised: this is
+the hot loop of every simulated scan, and its results agree with the plain formula to ~1e-14.
 """
 
 from __future__ import annotations
@@ -24,8 +27,50 @@ from numba import njit, prange
 
 _CHUNK = 512
 
+# Cody-Waite split of ln 2 (high part exact in 32 bits) for the range reduction of exp
+_LOG2E = 1.4426950408889634
+_LN2_HI = 0.6931471803691238
+_LN2_LO = 1.9082149292705877e-10
+#: exponent below which the transmission is taken as exp(-700) (~1e-304)
+_MAX_TAU = 700.0
 
-@njit(parallel=True, cache=True)
+
+@njit(cache=True, fastmath=True, inline="always")
+def _exp_neg(tau, out, bits):  # pragma: no cover - compiled
+    """out[e] = exp(-tau[e]) for tau >= 0, in vectorisable form.
+
+    ``x = k ln2 + r`` with ``|r| <= ln2 / 2`` (Cody-Waite), ``exp(r)`` by its Taylor series to
+    degree 12 (truncation < 1e-17), ``2^k`` built in the exponent bits. Relative error below
+    3e-14 over [0, 700] (tested against numpy.exp); exponents above 700 are clamped.
+    """
+    n = tau.shape[0]
+    for e in range(n):
+        x = -tau[e]
+        if x < -_MAX_TAU:
+            x = -_MAX_TAU
+        k = math.floor(x * _LOG2E + 0.5)
+        r = (x - k * _LN2_HI) - k * _LN2_LO
+        p = 1.0 + r * (1.0 + r * (0.5 + r * (1.0 / 6.0 + r * (1.0 / 24.0 + r * (
+            1.0 / 120.0 + r * (1.0 / 720.0 + r * (1.0 / 5040.0 + r * (1.0 / 40320.0 + r * (
+                1.0 / 362880.0 + r * (1.0 / 3628800.0 + r * (1.0 / 39916800.0 + r * (
+                    1.0 / 479001600.0))))))))))))
+        bits[e] = (np.int64(k) + 1023) << 52
+        out[e] = p
+    scale = bits.view(np.float64)
+    for e in range(n):
+        out[e] *= scale[e]
+
+
+@njit(cache=True)
+def exp_neg(tau):  # pragma: no cover - compiled
+    """exp(-tau) with the kernel's vectorised exponential (for tests)."""
+    out = np.empty_like(tau)
+    bits = np.empty(tau.shape[0], dtype=np.int64)
+    _exp_neg(tau, out, bits)
+    return out
+
+
+@njit(parallel=True, cache=True, fastmath=True)
 def _expected_kernel(lengths, mu, weights, out):  # pragma: no cover - compiled
     n_mat, n_cells, n_sub = lengths.shape
     n_bins, n_energy = weights.shape
@@ -38,36 +83,34 @@ def _expected_kernel(lengths, mu, weights, out):  # pragma: no cover - compiled
     n_chunks = (n_cells + _CHUNK - 1) // _CHUNK
     for c in prange(n_chunks):
         acc = np.empty(n_bins)
-        ell = np.empty(n_mat)
-        used = np.empty(n_mat, dtype=np.int64)
         tau = np.empty(n_energy)
+        trans = np.empty(n_energy)
+        bits = np.empty(n_energy, dtype=np.int64)
         stop = min(n_cells, (c + 1) * _CHUNK)
         for p in range(c * _CHUNK, stop):
             for b in range(n_bins):
                 acc[b] = 0.0
             for s in range(n_sub):
-                k = 0
+                crossed = False
                 for m in range(n_mat):
                     v = lengths[m, p, s]
                     if v != 0.0:
-                        ell[k] = v
-                        used[k] = m
-                        k += 1
-                if k == 0:
+                        if not crossed:
+                            for e in range(n_energy):
+                                tau[e] = 0.0
+                            crossed = True
+                        for e in range(n_energy):
+                            tau[e] += mu[m, e] * v
+                if not crossed:
                     for b in range(n_bins):
                         acc[b] += air[b]
                     continue
-                for e in range(n_energy):
-                    tau[e] = 0.0
-                for i in range(k):
-                    m = used[i]
-                    v = ell[i]
+                _exp_neg(tau, trans, bits)
+                for b in range(n_bins):
+                    t = 0.0
                     for e in range(n_energy):
-                        tau[e] += mu[m, e] * v
-                for e in range(n_energy):
-                    a = math.exp(-tau[e])
-                    for b in range(n_bins):
-                        acc[b] += weights[b, e] * a
+                        t += weights[b, e] * trans[e]
+                    acc[b] += t
             for b in range(n_bins):
                 out[b, p] = acc[b] / n_sub
 
