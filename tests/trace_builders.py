@@ -177,6 +177,44 @@ def rotated_poses(poses: Poses, rotation: np.ndarray) -> Poses:
                  poses.pitch_v_mm, poses.angles_rad * np.nan, 3)
 
 
+def line_poses(origins, directions, segment=None) -> Poses:
+    """One view per line: a parallel view through ``origins`` along ``directions`` (whole
+    lines), or a divergent view from ``origins`` to ``origins + segment * directions``."""
+    d = directions / np.linalg.norm(directions, axis=1, keepdims=True)
+    helper = np.where(np.abs(d[:, 2:3]) < 0.9, [[0.0, 0.0, 1.0]], [[1.0, 0.0, 0.0]])
+    u = np.cross(helper, d)
+    u /= np.linalg.norm(u, axis=1, keepdims=True)
+    v = np.cross(d, u)
+    n = d.shape[0]
+    if segment is None:
+        return Poses(True, np.zeros((n, 3)), d, origins.copy(), u, v, False, np.zeros(1),
+                     np.zeros(1), 1.0, 1.0, np.full(n, np.nan), 3)
+    det = origins + segment[:, None] * d
+    return Poses(False, origins.copy(), d, det, u, v, False, np.zeros(1), np.zeros(1), 1.0,
+                 1.0, np.full(n, np.nan), 3)
+
+
+def random_lines(rng, centre, reach, n=48, far=400.0):
+    """Lines passing at distances 0..1.3 reach from ``centre``, starting ~``far`` away."""
+    d = rng.normal(size=(n, 3))
+    d /= np.linalg.norm(d, axis=1, keepdims=True)
+    perp = np.cross(d, rng.normal(size=(n, 3)))
+    perp /= np.linalg.norm(perp, axis=1, keepdims=True)
+    dist = rng.uniform(0.0, 1.3, n) * reach
+    start = np.asarray(centre) + dist[:, None] * perp - far * d
+    return start, d
+
+
+def planar_lines(rng, centre, reach, n=48, far=400.0):
+    """Lines in the plane z = centre z (2-D scanners)."""
+    ang = rng.uniform(0, 2 * np.pi, n)
+    d = np.stack([np.cos(ang), np.sin(ang), np.zeros(n)], axis=1)
+    perp = np.stack([-np.sin(ang), np.cos(ang), np.zeros(n)], axis=1)
+    dist = rng.uniform(-1.3, 1.3, n) * reach
+    start = np.asarray(centre) + dist[:, None] * perp - far * d
+    return start, d
+
+
 # Shepp–Logan head phantom: Kak & Slaney, Principles of Computerized Tomographic Imaging
 # (IEEE Press 1988; SIAM 2001), ch. 3, Table 3.1 (values recalled from memory): centre
 # (x, y), semi-axes (A, B), angle of A from the x axis in degrees, refractive index rho.

@@ -1,6 +1,8 @@
 """Siddon's method for voxel phantoms (numba): exact path length of a ray in every voxel.
 
-The ray is clipped to the grid box, then walked voxel by voxel in the incremental form of
+Voxels are half-open boxes ``[lo, hi)`` along each axis: a ray running exactly in a plane of
+voxel faces is counted in the voxels on the + side of that plane. The ray is clipped to the
+grid box, then walked voxel by voxel in the incremental form of
 Jacobs et al.: at each step the nearest of the next x, y (and z) plane crossings ends the
 current segment. Plane positions are recomputed from their index (``lo + k * spacing``) at
 every step, so no error accumulates along the ray.
@@ -76,7 +78,9 @@ def siddon_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, lo, spacing, use_z,
                 t0 = s0
             if s1 < t1:
                 t1 = s1
-        elif o[a] < lo[a] or o[a] > hi:
+        elif o[a] < lo[a] or o[a] >= hi:
+            # a ray in a plane of voxel faces belongs to the voxels on its + side
+            # (half-open voxels [lo, hi)); the grid's upper face is outside
             return
     if not t1 > t0:
         return
