@@ -152,10 +152,7 @@ def cmd_spectrum(args: argparse.Namespace) -> int:
 
     out = _check_output(args.output, ".png")
     scanner = load_scanner(resolve(args.scanner, "scanners"))
-    if scanner.physics is None:
-        raise InputError(Where(str(scanner.source), field="source"),
-                         "the scanner file has no source section", "add a source section")
-    spectrum = scanner.physics.spectrum
+    spectrum = scanner.spectrum()
     plot_spectrum(spectrum, out)
     print(f"wrote {out}")
     print(f"mean energy {spectrum.mean_energy_kev:.1f} keV, first HVL {spectrum.hvl_mm_al:.2f} mm Al, "

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from simbench.errors import InputError
+from simbench.errors import InputError, Where
 from simbench.spec import Section, load_yaml, parse_yaml_text
 
 TOP_LEVEL_KEYS = ("name", "description", "units", "geometry", "source", "exposure", "detector",
@@ -42,6 +42,35 @@ class Scanner:
     geometry: Any
     physics: Any
     source: str
+
+    def spectrum(self):
+        """The source spectrum (:class:`simbench.materials.spectra.Spectrum`), filtration applied.
+
+        A ``spectrum_file`` is read relative to the scanner file. Raises InputError when the
+        scanner has no source section.
+        """
+        from simbench.materials import spectra
+
+        if self.physics is None:
+            raise InputError(Where(str(self.source), field="source"),
+                             "the scanner file has no source section",
+                             "add a source section (energy, kvp or spectrum_file)")
+        src = self.physics.source
+        if src.kind == "monochromatic":
+            return spectra.monochromatic(src.energy_kev)
+        if src.kind == "tube":
+            return spectra.tube_spectrum(src.kvp, anode_angle_deg=src.anode_angle_deg,
+                                         filtration=tuple(src.filtration),
+                                         bin_kev=src.energy_bin_kev)
+        spectrum = spectra.load_spectrum(self.spectrum_file_path())
+        for material, thickness_mm in src.filtration:
+            spectrum = spectra.filtered(spectrum, material, thickness_mm)
+        return spectrum
+
+    def spectrum_file_path(self) -> Path:
+        """Path of the source's spectrum file, resolved against the scanner file's folder."""
+        path = Path(self.physics.source.spectrum_file)
+        return path if path.is_absolute() else Path(self.source).parent / path
 
 
 def load_scanner(path: str | Path) -> Scanner:

@@ -147,3 +147,69 @@ def test_list_names_shipped_files(capsys):
     for name in ("shepp-logan", "water-ellipse-inserts", "cone-beam-3d", "fan-clinical",
                  "cone-flat-panel", "parallel-bench-2d", "water"):
         assert name in out
+
+
+MONO_SCANNER = PARALLEL_SCANNER + """\
+source:
+  energy: 60 keV
+exposure:
+  air_counts: 1.0e4
+"""
+
+
+def _scan(phantom, scanner, out, *extra):
+    return main(["scan", str(phantom), str(scanner), "-o", str(out), *extra])
+
+
+def test_scan_folder_noise_free_equals_truth(disc_files, tmp_path):
+    phantom, _ = disc_files
+    scanner = tmp_path / "mono.yaml"
+    scanner.write_text(MONO_SCANNER)
+    out = tmp_path / "scan"
+    assert _scan(phantom, scanner, out, "--noise-free") == 0
+    record = json.loads((out / "scan.json").read_text())
+    assert record["truth"]["reference_energy_kev"] == 60.0
+    assert record["seed"]["noise"] is False
+    truth = np.load(out / "truth" / "line_integrals.npy")
+    projections = np.load(out / "measured" / "projections.npy")
+    # Beer-Lambert with air calibration (fact of the trade): ln(flat / counts) is the line
+    # integral; the stored projections are float32, so compare at float32 precision.
+    np.testing.assert_allclose(projections, truth, rtol=1e-6, atol=1e-6)
+    for name in ("counts", "flat", "dark"):
+        assert (out / "measured" / f"{name}.npy").exists()
+
+
+def test_scan_same_seed_same_bits_other_seed_differs(disc_files, tmp_path):
+    phantom, _ = disc_files
+    scanner = tmp_path / "mono.yaml"
+    scanner.write_text(MONO_SCANNER)
+    runs = {}
+    for name, seed in (("a", "5"), ("b", "5"), ("c", "6")):
+        assert _scan(phantom, scanner, tmp_path / name, "--seed", seed) == 0
+        runs[name] = np.load(tmp_path / name / "measured" / "counts.npy")
+    assert np.array_equal(runs["a"], runs["b"])
+    assert not np.array_equal(runs["a"], runs["c"])
+
+
+def test_scan_bad_kvp_is_one_line_exit_2(disc_files, tmp_path, capsys):
+    phantom, _ = disc_files
+    scanner = tmp_path / "tube.yaml"
+    scanner.write_text(PARALLEL_SCANNER + "source:\n  kvp: 20\nexposure:\n  air_counts: 1.0e4\n")
+    assert _scan(phantom, scanner, tmp_path / "out") == 2
+    line = _error_line(capsys)
+    assert "tube.yaml:10:8" in line and "kvp" in line
+    assert not (tmp_path / "out" / "scan.json").exists()
+
+
+def test_scan_without_source_section(disc_files, tmp_path, capsys):
+    phantom, scanner = disc_files
+    assert _scan(phantom, scanner, tmp_path / "out") == 2
+    assert "source" in _error_line(capsys)
+
+
+def test_spectrum_command_prints_beam_quality(tmp_path, capsys):
+    out = tmp_path / "spectrum.png"
+    assert main(["spectrum", "fan-clinical", "-o", str(out)]) == 0
+    assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    text = capsys.readouterr().out
+    assert "mean energy" in text and "mm Al" in text

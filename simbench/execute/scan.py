@@ -60,7 +60,7 @@ def run_scan(phantom, scanner, out: Path, *, seed: int = 0, noise: bool = True,
         A one-paragraph summary for the terminal.
     """
     from simbench.atomic import write_json, write_npy
-    from simbench.geometry import focal_spot_points
+    from simbench.geometry import cell_subsamples, focal_spot_points
     from simbench.materials import mu_table
     from simbench.measure import describe, measure, rng_for
     from simbench.trace import edge_truncation, line_integrals, trace
@@ -73,13 +73,19 @@ def run_scan(phantom, scanner, out: Path, *, seed: int = 0, noise: bool = True,
                          "a folder path")
     physics = scanner.physics
     poses = scanner.geometry.poses()
-    spot = None
     src = physics.source
+    spot = cells = None
     if not poses.parallel and (src.focal_spot_samples[0] * src.focal_spot_samples[1] > 1):
         spot = focal_spot_points(src.focal_spot_mm[0], src.focal_spot_mm[1],
                                  src.focal_spot_samples[0], src.focal_spot_samples[1])
+    n_u, n_v = physics.detector.aperture_samples
+    if poses.dimension == 2:
+        n_v = 1  # a 2-D scanner's rays stay in its plane
+    if n_u * n_v > 1:
+        cells = cell_subsamples(n_u, n_v, poses.pitch_u_mm, poses.pitch_v_mm)
+    subrays = spot is not None or cells is not None
     started = time.perf_counter()
-    lengths = trace(phantom, poses, spot_samples=spot)
+    lengths = trace(phantom, poses, cell_samples=cells, spot_samples=spot)
     trace_seconds = time.perf_counter() - started
     fraction = edge_truncation(lengths)
     if fraction > 0:
@@ -88,18 +94,15 @@ def run_scan(phantom, scanner, out: Path, *, seed: int = 0, noise: bool = True,
 
     user_spectrum = None
     if src.kind == "file":
-        from simbench.materials.spectra import load_spectrum
+        from simbench.materials.spectrum_file import load_spectrum
         from simbench.measure import SpectrumArrays
 
-        path = Path(src.spectrum_file)
-        if not path.is_absolute():
-            path = Path(scanner.source).parent / path
-        loaded = load_spectrum(path)
+        loaded = load_spectrum(scanner.spectrum_file_path())
         user_spectrum = SpectrumArrays(loaded.energies_kev, loaded.fluence)
 
     rng = rng_for(seed, *scan_identity(phantom, scanner, realization))
     started = time.perf_counter()
-    result = measure(lengths, phantom.materials, physics, poses=poses, subrays=spot is not None,
+    result = measure(lengths, phantom.materials, physics, poses=poses, subrays=subrays,
                      spectrum=user_spectrum, rng=rng, noise=noise)
     measure_seconds = time.perf_counter() - started
 
@@ -108,7 +111,7 @@ def run_scan(phantom, scanner, out: Path, *, seed: int = 0, noise: bool = True,
                                 else round(float(result.metadata["mean_detected_energy_kev"]), 1))
     reference_kev = float(reference_energy_kev)
     mu_ref = mu_table(phantom.materials, [reference_kev])[:, 0]
-    centre_lengths = lengths if spot is None else lengths.mean(axis=-1)
+    centre_lengths = lengths.mean(axis=-1) if subrays else lengths
     truth = line_integrals(centre_lengths, mu_ref)
 
     out.mkdir(parents=True, exist_ok=True)
@@ -125,7 +128,7 @@ def run_scan(phantom, scanner, out: Path, *, seed: int = 0, noise: bool = True,
         "measurement": result.metadata,
         "truth": {"reference_energy_kev": reference_kev,
                   "mu_per_mm": {m.name: float(v) for m, v in zip(phantom.materials, mu_ref)},
-                  "path_lengths": "averaged over focal-spot sub-rays" if spot is not None else
+                  "path_lengths": "averaged over the focal-spot and aperture sub-rays" if subrays else
                   "through the cell centre"},
         "seed": {"root_seed": int(seed), "identity": list(scan_identity(phantom, scanner, realization)),
                  "noise": bool(noise)},

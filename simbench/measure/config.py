@@ -41,6 +41,7 @@ Scanner-file keys (every unit explicit or stated here)::
       flat_frames: 20            # frames averaged for the flat (air) frame
       dark_frames: 20            # frames averaged for the dark frame
       pattern_seed: 0            # seed of the fixed pattern (gains, dead and hot cells)
+      aperture_samples: [3, 3]   # sub-rays across each cell's aperture along u and v
     scatter:
       model: none                # none | centre | thickness
       spr_at_centre: 0.2         # centre: scatter-to-primary ratio at the central cell
@@ -207,6 +208,10 @@ class DetectorConfig:
         Readings averaged into the flat and the dark frame.
     pattern_seed : int
         Seed of the detector's fixed pattern.
+    aperture_samples : (int, int)
+        Sub-rays across each cell's aperture along u and v (the tracer's cell samples);
+        with the focal-spot samples they are averaged in intensity, which gives the
+        exponential edge-gradient effect.
     """
 
     type: str = "energy-integrating"
@@ -230,6 +235,7 @@ class DetectorConfig:
     flat_frames: int = 20
     dark_frames: int = 20
     pattern_seed: int = 0
+    aperture_samples: tuple = (1, 1)
 
     @property
     def photon_counting(self) -> bool:
@@ -437,7 +443,7 @@ def parse_detector(section: Section) -> DetectorConfig:
         "type", "thresholds", "energy_resolution", "material", "density_g_cm3", "thickness",
         "electronic_noise", "dark_level", "full_scale", "gain_spread", "gain_drift",
         "dead_cells", "hot_cells", "blur", "crosstalk", "lag", "flat_frames", "dark_frames",
-        "pattern_seed"])
+        "pattern_seed", "aperture_samples"])
     kind = section.string("type", default="energy-integrating",
                           choices=["energy-integrating", "photon-counting"])
     thresholds: list[float] = []
@@ -530,6 +536,8 @@ def parse_detector(section: Section) -> DetectorConfig:
         flat_frames=section.integer("flat_frames", default=20, minimum=1),
         dark_frames=section.integer("dark_frames", default=20, minimum=1),
         pattern_seed=section.integer("pattern_seed", default=0, minimum=0),
+        aperture_samples=_pair(section, "aperture_samples", (1, 1),
+                               lambda v, w: check_integer(v, w, minimum=1, maximum=64)),
     )
 
 
