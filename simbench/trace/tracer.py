@@ -385,7 +385,10 @@ def edge_truncation(path_lengths: np.ndarray, *, sub_rays: bool = False) -> floa
     """
     lengths = np.asarray(path_lengths)
     if sub_rays:
-        lengths = lengths.any(axis=-1) if lengths.ndim >= 4 else lengths
+        if lengths.ndim not in (4, 5):
+            raise InputError(_where("path_lengths"), f"shape {lengths.shape}",
+                             "(materials, views, [rows,] columns, sub-rays)")
+        lengths = lengths.any(axis=-1)
     if lengths.ndim not in (3, 4):
         raise InputError(_where("path_lengths"), f"shape {lengths.shape}",
                          "(materials, views, [rows,] columns[, sub-rays])")
