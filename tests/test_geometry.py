@@ -346,13 +346,11 @@ def test_helpers_for_sub_rays():
 def test_shipped_scanner_files(name, shape):
     from importlib.resources import files
 
-    from simbench.spec import load_yaml
+    from simbench.scanner import load_scanner
 
-    path = files("simbench") / "data" / "scanners" / f"{name}.yaml"
-    root = Section.root(load_yaml(path), str(path))
-    root.check_keys(("name", "geometry"), ("name", "geometry"))
-    g = parse_geometry(root.section("geometry"))
-    assert g.poses().projection_shape == shape
+    scanner = load_scanner(files("simbench") / "data" / "scanners" / f"{name}.yaml")
+    assert scanner.geometry.poses().projection_shape == shape
+    assert scanner.physics is not None
 
 
 # --------------------------------------------------------------------------------------------
