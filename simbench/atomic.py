@@ -38,6 +38,9 @@ def atomic_path(path: str | Path, suffix: str = "") -> Iterator[Path]:
         yield tmp_path
         with open(tmp_path, "rb+") as handle:
             os.fsync(handle.fileno())
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp_path, 0o666 & ~umask)  # mkstemp makes owner-only files
         os.replace(tmp_path, path)
     finally:
         if tmp_path.exists():

@@ -6,12 +6,11 @@ from pathlib import Path
 
 import numpy as np
 
-from simbench.atomic import save_figure
+from simbench.report.figures import finish_figure
 from simbench.geometry.grid import ImageGrid
 from simbench.phantom.compiled import PRISM_CODES, Phantom
 from simbench.phantom.rasterize import rasterize
 
-CAUTION_LINE = "simbench results do not replace acceptance testing, dosimetry or clinical validation"
 
 
 def phantom_extent_mm(phantom: Phantom) -> tuple[np.ndarray, np.ndarray]:
@@ -144,10 +143,4 @@ def draw_phantom(phantom: Phantom, path: str | Path, *, energy_kev: float = 60.0
         fig.colorbar(shown, ax=ax, fraction=0.046, pad=0.02, label="mu (1/mm)")
     fig.suptitle(f"{phantom.name}: truth mu at {energy_kev:g} keV", fontsize=11)
     fig.get_layout_engine().set(h_pad=0.25)
-    fig.text(0.5, 0.005, CAUTION_LINE, ha="center", va="bottom", fontsize=6, color="0.35")
-    path = Path(path)
-    try:
-        save_figure(fig, path, dpi=120)
-    finally:
-        plt.close(fig)
-    return path
+    return finish_figure(fig, path, dpi=120)

@@ -4,8 +4,6 @@ from __future__ import annotations
 
 import dataclasses
 import math
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -14,23 +12,9 @@ from simbench.errors import InputError, Where
 from simbench.geometry.field_of_view import field_of_view_radius_mm
 from simbench.geometry.poses import Poses
 from simbench.geometry.rays import cell_rays
+from simbench.report.figures import finish_figure
 
 _COLOURS = ("tab:blue", "tab:orange", "tab:green", "tab:red", "tab:purple", "tab:brown")
-
-
-def _save_atomically(figure, path: Path, dpi: int) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    handle, temp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    os.close(handle)
-    try:
-        figure.savefig(temp, format="png", dpi=dpi)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(temp, 0o666 & ~umask)
-        os.replace(temp, path)
-    except BaseException:
-        Path(temp).unlink(missing_ok=True)
-        raise
 
 
 def _pick_views(poses: Poses, views) -> np.ndarray:
@@ -176,9 +160,7 @@ def draw_geometry(poses: Poses, path: str | Path, *, views=None, title: str = ""
         _side_view(axes[0, 1], poses, int(chosen[0]), depth)
     if title:
         figure.suptitle(title)
-    _save_atomically(figure, path, dpi)
-    plt.close(figure)
-    return path
+    return finish_figure(figure, path, dpi=dpi)
 
 
 def _side_view(ax, poses: Poses, view: int, depth: float) -> None:

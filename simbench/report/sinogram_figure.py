@@ -26,7 +26,7 @@ def draw_sinogram(projections: np.ndarray, path: str | Path, *, title: str = "",
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    from simbench.atomic import save_figure
+    from simbench.report.figures import finish_figure
 
     data = np.asarray(projections)
     if data.ndim == 3:
@@ -39,9 +39,4 @@ def draw_sinogram(projections: np.ndarray, path: str | Path, *, title: str = "",
     axes.set_ylabel("view")
     axes.set_title(title)
     figure.colorbar(shown, ax=axes, label=label)
-    figure.text(0.01, 0.005, "simbench results do not replace acceptance testing, dosimetry or "
-                "clinical validation", fontsize=6, color="0.4")
-    save_figure(figure, path, dpi=110)
-    plt.close(figure)
-
-
+    finish_figure(figure, path, dpi=110)

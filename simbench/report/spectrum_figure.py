@@ -2,12 +2,9 @@
 
 from __future__ import annotations
 
-import os
-import tempfile
 from pathlib import Path
 
-CAUTION = ("simbench results do not replace acceptance testing, dosimetry or clinical "
-           "validation")
+from simbench.report.figures import finish_figure
 
 
 def plot_spectrum(spectrum, path: str | Path, *, title: str | None = None) -> Path:
@@ -29,7 +26,7 @@ def plot_spectrum(spectrum, path: str | Path, *, title: str | None = None) -> Pa
     Notes
     -----
     The title carries the mean energy (keV) and the first half-value layer in aluminium
-    (mm, by air kerma); a footer carries the caution line :data:`CAUTION`.
+    (mm, by air kerma); a footer carries the caution line.
     """
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
@@ -53,15 +50,4 @@ def plot_spectrum(spectrum, path: str | Path, *, title: str | None = None) -> Pa
     axes.grid(alpha=0.3)
     figures = f"mean {spectrum.mean_energy_kev:.1f} keV, HVL {spectrum.hvl_mm_al:.2f} mm Al"
     axes.set_title(f"{title or spectrum.description}\n{figures}", fontsize=9)
-    figure.text(0.01, 0.003, CAUTION, fontsize=6, color="0.4")
-    path.parent.mkdir(parents=True, exist_ok=True)
-    handle, temporary = tempfile.mkstemp(suffix=".png", dir=path.parent, prefix=f".{path.name}.")
-    try:
-        with os.fdopen(handle, "wb") as stream:
-            figure.savefig(stream, format="png", dpi=110)
-        os.replace(temporary, path)
-    except BaseException:
-        if os.path.exists(temporary):
-            os.unlink(temporary)
-        raise
-    return path
+    return finish_figure(figure, path, dpi=110)
