@@ -246,7 +246,7 @@ def _covered_insert(cs, ce, ncov, a, b):
 
 @njit(cache=True, inline="always", error_model="numpy")
 def trace_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, u, cand, n_cand, win,
-              shape, centre, rotation, half_sizes, params, mode, material,
+              shape, centre, rotation, half_sizes, inv_half, params, mode, material,
               poly_start, poly_count, poly_xy, t0buf, t1buf, kbuf, cs, ce, crossings, acc):
     """Accumulate the path length of one ray in each material into ``acc``.
 
@@ -291,21 +291,23 @@ def trace_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, u, cand, n_cand, win,
                     m += 1
             n = m
             continue
-        a_ = half_sizes[k, 0]
-        b_ = half_sizes[k, 1]
-        c_ = half_sizes[k, 2]
         if code == ELLIPSOID:
-            t0, t1 = ellipsoid_interval(lx, ly, lz, ldx, ldy, ldz, a_, b_, c_)
+            t0, t1 = ellipsoid_interval(lx, ly, lz, ldx, ldy, ldz, inv_half[k, 0],
+                                        inv_half[k, 1], inv_half[k, 2])
         elif code == CYLINDER:
-            t0, t1 = cylinder_interval(lx, ly, lz, ldx, ldy, ldz, a_, b_, c_)
+            t0, t1 = cylinder_interval(lx, ly, lz, ldx, ldy, ldz, inv_half[k, 0],
+                                       inv_half[k, 1], half_sizes[k, 2])
         elif code == BOX:
-            t0, t1 = box_interval(lx, ly, lz, ldx, ldy, ldz, a_, b_, c_)
+            t0, t1 = box_interval(lx, ly, lz, ldx, ldy, ldz, half_sizes[k, 0],
+                                  half_sizes[k, 1], half_sizes[k, 2])
         elif code == ELLIPSE_2D:
-            t0, t1 = ellipse_prism_interval(lx, ly, ldx, ldy, a_, b_)
+            t0, t1 = ellipse_prism_interval(lx, ly, ldx, ldy, inv_half[k, 0], inv_half[k, 1])
         elif code == RECTANGLE_2D:
-            t0, t1 = rectangle_prism_interval(lx, ly, ldx, ldy, a_, b_)
+            t0, t1 = rectangle_prism_interval(lx, ly, ldx, ldy, half_sizes[k, 0],
+                                              half_sizes[k, 1])
         elif code == CONE:
-            t0, t1 = cone_interval(lx, ly, lz, ldx, ldy, ldz, params[k, 0], params[k, 1], c_)
+            t0, t1 = cone_interval(lx, ly, lz, ldx, ldy, ldz, params[k, 0], params[k, 1],
+                                   half_sizes[k, 2])
         else:
             continue
         a = max(t0 + tc, t_min)
@@ -336,8 +338,9 @@ def trace_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, u, cand, n_cand, win,
 @njit(parallel=True, cache=True, error_model="numpy")
 def trace_objects_chunk(parallel, curved, source, direction, detector_centre, u_axis, v_axis,
                         views, out_view0, col_u, row_v, cell_du, cell_dv, spot_u, spot_v,
-                        windows, shape, centre, rotation, half_sizes, params, mode, material,
-                        poly_start, poly_count, poly_xy, max_intervals, max_poly, n_blocks, out):
+                        windows, shape, centre, rotation, half_sizes, inv_half, params, mode,
+                        material, poly_start, poly_count, poly_xy, max_intervals, max_poly,
+                        n_blocks, out):
     """Trace a chunk of views; writes ``out[m, out_view0 + i, row, col, f * S + s]``.
 
     Returns the number of rays whose result is not finite (a ray running along the axis
@@ -390,9 +393,9 @@ def trace_objects_chunk(parallel, curved, source, direction, detector_centre, u_
                             parallel, curved, source, direction, detector_centre, u_axis,
                             v_axis, view, u, v_row + cell_dv[s], spot_u[f], spot_v[f])
                         trace_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, u, cand, n_cand, win,
-                                  shape, centre, rotation, half_sizes, params, mode, material,
-                                  poly_start, poly_count, poly_xy, t0buf, t1buf, kbuf, cs, ce,
-                                  crossings, acc)
+                                  shape, centre, rotation, half_sizes, inv_half, params, mode,
+                                  material, poly_start, poly_count, poly_xy, t0buf, t1buf, kbuf,
+                                  cs, ce, crossings, acc)
                     col = f * n_cell + s
                     for m in range(n_mat):
                         if not math.isfinite(acc[m]):

@@ -45,8 +45,8 @@ def _quadratic_roots(a, b_half, c):
 
 
 @njit(cache=True, inline="always", error_model="numpy")
-def ellipsoid_interval(ox, oy, oz, dx, dy, dz, a, b, c):
-    """Chord of ``(x/a)^2 + (y/b)^2 + (z/c)^2 <= 1``.
+def ellipsoid_interval(ox, oy, oz, dx, dy, dz, inv_a, inv_b, inv_c):
+    """Chord of ``(x/a)^2 + (y/b)^2 + (z/c)^2 <= 1``, given the inverse semi-axes ``1/a``...
 
     Notes
     -----
@@ -54,8 +54,8 @@ def ellipsoid_interval(ox, oy, oz, dx, dy, dz, a, b, c):
     the scaled origin and direction (``d'`` not renormalised, so ``t`` stays in mm),
     ``|d'|^2 t^2 + 2 (o'.d') t + |o'|^2 - 1 = 0``.
     """
-    sx, sy, sz = ox / a, oy / b, oz / c
-    ex, ey, ez = dx / a, dy / b, dz / c
+    sx, sy, sz = ox * inv_a, oy * inv_b, oz * inv_c
+    ex, ey, ez = dx * inv_a, dy * inv_b, dz * inv_c
     qa = ex * ex + ey * ey + ez * ez
     qb = sx * ex + sy * ey + sz * ez
     qc = sx * sx + sy * sy + sz * sz - 1.0
@@ -66,10 +66,11 @@ def ellipsoid_interval(ox, oy, oz, dx, dy, dz, a, b, c):
 
 
 @njit(cache=True, inline="always", error_model="numpy")
-def ellipse_prism_interval(ox, oy, dx, dy, a, b):
-    """Chord of the infinite elliptic prism ``(x/a)^2 + (y/b)^2 <= 1`` (any z)."""
-    sx, sy = ox / a, oy / b
-    ex, ey = dx / a, dy / b
+def ellipse_prism_interval(ox, oy, dx, dy, inv_a, inv_b):
+    """Chord of the infinite elliptic prism ``(x/a)^2 + (y/b)^2 <= 1`` (any z), given the
+    inverse semi-axes."""
+    sx, sy = ox * inv_a, oy * inv_b
+    ex, ey = dx * inv_a, dy * inv_b
     qa = ex * ex + ey * ey
     qc = sx * sx + sy * sy - 1.0
     if qa == 0.0:
@@ -88,8 +89,9 @@ def ellipse_prism_interval(ox, oy, dx, dy, a, b):
 def _slab(o, d, h, t0, t1):
     """Clip ``[t0, t1]`` to the slab ``|o + t d| <= h``."""
     if d != 0.0:
-        s0 = (-h - o) / d
-        s1 = (h - o) / d
+        inv_d = 1.0 / d
+        s0 = (-h - o) * inv_d
+        s1 = (h - o) * inv_d
         if s0 > s1:
             s0, s1 = s1, s0
         if s0 > t0:
@@ -119,9 +121,10 @@ def rectangle_prism_interval(ox, oy, dx, dy, a, b):
 
 
 @njit(cache=True, inline="always", error_model="numpy")
-def cylinder_interval(ox, oy, oz, dx, dy, dz, a, b, c):
-    """Chord of the finite elliptic cylinder ``(x/a)^2 + (y/b)^2 <= 1, |z| <= c``."""
-    t0, t1 = ellipse_prism_interval(ox, oy, dx, dy, a, b)
+def cylinder_interval(ox, oy, oz, dx, dy, dz, inv_a, inv_b, c):
+    """Chord of the finite elliptic cylinder ``(x/a)^2 + (y/b)^2 <= 1, |z| <= c``, given
+    ``1/a``, ``1/b`` and the half height ``c``."""
+    t0, t1 = ellipse_prism_interval(ox, oy, dx, dy, inv_a, inv_b)
     if t0 >= t1:
         return _MISS
     return _slab(oz, dz, c, t0, t1)

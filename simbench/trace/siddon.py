@@ -26,7 +26,7 @@ from numba import njit, prange
 from simbench.geometry.rays import detector_ray
 
 
-@njit(cache=True, error_model="numpy")
+@njit(cache=True, inline="always", error_model="numpy")
 def _first_plane(lo, spacing, index, direction, origin):
     """Parameter of the next plane crossed along one axis from voxel ``index``."""
     if direction > 0.0:
@@ -36,7 +36,7 @@ def _first_plane(lo, spacing, index, direction, origin):
     return np.inf
 
 
-@njit(cache=True, error_model="numpy")
+@njit(cache=True, inline="always", error_model="numpy")
 def siddon_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, lo, spacing, use_z,
                material_volume, mu_volume, use_mu, acc):
     """Accumulate one ray's voxel path lengths into ``acc``.

@@ -153,6 +153,7 @@ class _Plan:
                 np.ascontiguousarray(obj.centre, dtype=np.float64),
                 np.ascontiguousarray(obj.rotation, dtype=np.float64),
                 np.ascontiguousarray(obj.half_sizes, dtype=np.float64),
+                np.ascontiguousarray(1.0 / np.asarray(obj.half_sizes, dtype=np.float64)),
                 np.ascontiguousarray(obj.params, dtype=np.float64),
                 np.ascontiguousarray(obj.mode, dtype=np.int64),
                 np.ascontiguousarray(obj.material, dtype=np.int64),
