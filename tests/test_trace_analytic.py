@@ -12,7 +12,6 @@ grazing rays: any float method loses digits as ``sqrt(r^2 - d^2)`` -> 0.)
 from __future__ import annotations
 
 import numpy as np
-import pytest
 from hypothesis import given, settings, strategies as st
 from matplotlib.path import Path
 

@@ -4,6 +4,13 @@ One kernel call traces a chunk of views. Work is split into (view, focal-spot sa
 tasks; each task first lists the objects whose conservative detector window covers its row,
 then traces every cell (and cell sample) of the row against those candidates only. Scratch
 buffers are allocated once per work block, never per ray.
+
+All kernels use numba's numpy error model (IEEE division, no exception checks) and float64
+without fastmath. Small helpers are inlined at numba IR level: a non-inlined call with array
+arguments costs atomic reference counting on every ray.
+
+Note: numba's on-disk cache does not notice edits to inlined helpers in other modules
+(``shapes.py``, ``simbench.geometry.rays``); after editing them, delete ``__pycache__``.
 """
 
 from __future__ import annotations
@@ -63,8 +70,10 @@ def _object_window(parallel, s, d, dc, uu, vv, c, radius, prism):
     ``u(X) = (X - D) . g_u`` with ``g_u = U - (d.U / d.n) n`` (n the detector normal),
     so over a ball ``u`` spans ``(c - D) . g_u +- R |g_u|``.
     Divergent beam (flat detector): with ``n`` the detector normal, the ray through X has
-    ``tan`` of its angle in the (U, n) plane equal to ``(X - S).U / (X - S).n``; over a ball this ranges over the tangent angles of the
-    projected disk, ``atan2(x0, y0) +- asin(R / rho)``.
+    ``tan`` of its angle in the (U, n) plane equal to ``(X - S).U / (X - S).n``; over a
+    ball this ranges over the tangent angles of the projected disk,
+    ``atan2(x0, y0) +- asin(R / rho)``, and ``u = (S - D).U + h tan(angle)`` with
+    ``h = (D - S).n``.
     """
     inf = np.inf
     if parallel:
