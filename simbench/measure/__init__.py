@@ -234,7 +234,7 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
     lengths = np.asarray(path_lengths, dtype=np.float64)
     if lengths.ndim < 3:
         raise ValueError("path_lengths must be shaped (n_materials, views, [rows,] cols[, sub-rays])")
-    if not np.all(np.isfinite(lengths)):
+    if lengths.size and not (np.isfinite(lengths.min()) and np.isfinite(lengths.max())):
         raise ValueError("path_lengths contain NaN or inf")
     shape, subrays, pitch, sdd = _geometry(lengths, poses, pitch_mm, sdd_mm, subrays)
     src, exposure, det, sca = physics.source, physics.exposure, physics.detector, physics.scatter
@@ -337,7 +337,9 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
     # detector: PSF, lag, gain, readout, defects
     scan = apply_psf(scan, det, pitch, cell_axes)
     flat = apply_psf(flat, det, pitch, cell_axes)
-    scan = apply_lag(scan, det.lag, view_axis=1)
+    # scan is a fresh array here (counting noise or a copy): lag and gain work in place
+    scan = np.ascontiguousarray(scan, dtype=np.float64)
+    scan = apply_lag(scan, det.lag, view_axis=1, in_place=True)
     n_rows = 1 if two_d else shape[1]
     pattern = detector_pattern(det, n_rows, shape[-1])
     cells_shape = (shape[-1],) if two_d else (n_rows, shape[-1])
@@ -345,7 +347,7 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
     drift = pattern.drift.reshape(cells_shape)
     dead = pattern.dead.reshape(cells_shape)
     hot = pattern.hot.reshape(cells_shape)
-    scan = scan * (gain * drift * ~dead)
+    scan *= gain * drift * ~dead
     flat = flat * (gain * ~dead)
     sigma = det.electronic_noise
     scan += det.dark_level

@@ -159,7 +159,14 @@ def expected_signal(path_lengths: np.ndarray, mu_per_mm: np.ndarray, weights: np
     n_sub = lengths.shape[-1] if subrays else 1
     flat = np.ascontiguousarray(lengths).reshape(lengths.shape[0], -1, n_sub)
     out = np.empty((w.shape[0], flat.shape[1]), dtype=np.float64)
-    _expected_kernel(flat, mu, w, out)
+    # energies padded to a multiple of 8 (one AVX-512 vector) with mu = 0 and weight 0, which
+    # add exactly 0: the vectorised loops then have no scalar remainder
+    n_pad = -(-mu.shape[1] // 8) * 8
+    mu_pad = np.zeros((mu.shape[0], n_pad))
+    mu_pad[:, :mu.shape[1]] = mu
+    w_pad = np.zeros((w.shape[0], n_pad))
+    w_pad[:, :w.shape[1]] = w
+    _expected_kernel(flat, mu_pad, w_pad, out)
     return out.reshape((w.shape[0],) + tuple(shape))
 
 
