@@ -47,6 +47,8 @@ objects:
 """
 
 N_VIEWS, N_COLS, N_ENERGIES = 720, 888, 60
+#: timed runs of each of trace and measure (compiled before; the best run counts)
+ROUNDS = 5
 
 
 @pytest.fixture(scope="module")
@@ -56,7 +58,7 @@ def setup():
                       n_views=N_VIEWS, curved=True)
     trace(phantom, poses, views=np.arange(2))  # compile outside the timing
     times = []
-    for _ in range(3):
+    for _ in range(ROUNDS):
         start = time.perf_counter()
         lengths = trace(phantom, poses)
         times.append(time.perf_counter() - start)
@@ -83,7 +85,7 @@ def test_measure_vs_trace(benchmark, setup):
             sdd_mm=1050.0, spectrum=spectrum)  # compile outside the timing
     result = benchmark.pedantic(
         lambda: measure(lengths, phantom.materials, physics, poses=poses, spectrum=spectrum,
-                        rng=rng_for(1, "bench")), rounds=3, iterations=1)
+                        rng=rng_for(1, "bench")), rounds=ROUNDS, iterations=1)
     measure_s = benchmark.stats.stats.min
     benchmark.extra_info.update({
         "sinogram": f"{N_VIEWS} x {N_COLS} fan beam, {len(phantom.materials)} materials",
@@ -92,5 +94,7 @@ def test_measure_vs_trace(benchmark, setup):
         "measure_seconds": measure_s,
         "measure_over_trace": measure_s / trace_s,
     })
+    print(f"\ntrace {trace_s:.4f} s, measure {measure_s:.4f} s (best of {ROUNDS} each), "
+          f"measure / trace = {measure_s / trace_s:.2f}")
     assert result.projections.shape == (N_VIEWS, N_COLS)
     assert np.all(np.isfinite(result.projections))

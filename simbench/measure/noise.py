@@ -120,13 +120,15 @@ def compound_counts(m0: np.ndarray, m1: np.ndarray, m2: np.ndarray, rng: np.rand
     float64 array, same shape
         Mean signal over the frames.
     """
-    flat_m0 = m0.reshape(-1) * frames
-    out = m1.reshape(-1).astype(np.float64, copy=True) * frames
+    flat_m0 = m0.reshape(-1)
+    out = m1.reshape(-1).astype(np.float64, copy=True)
     z = rng.standard_normal(out.shape[0])
-    out += np.sqrt(m2.reshape(-1) * frames) * z
-    dark = np.flatnonzero(flat_m0 < GAUSSIAN_MIN_PHOTONS)
+    spread = np.sqrt(m2.reshape(-1) * (1.0 / frames))  # rms of the mean of the frames
+    spread *= z
+    out += spread
+    dark = np.flatnonzero(flat_m0 < GAUSSIAN_MIN_PHOTONS / frames)
     if dark.size:
         n, w = exact_bins(dark)
         draws = rng.poisson(n * frames).astype(np.float64)
-        out[dark] = draws @ w
-    return (out / frames).reshape(m0.shape)
+        out[dark] = (draws @ w) / frames
+    return out.reshape(m0.shape)
