@@ -73,7 +73,7 @@ def test_cone_beam_analytic(benchmark, cone_setup):
     ref_pairs_per_s = n_rays / (time.perf_counter() - t)
     del rays, w, along, dist2, _
 
-    result = benchmark.pedantic(trace, args=(phantom, poses), rounds=2, iterations=1)
+    result = benchmark.pedantic(trace, args=(phantom, poses), rounds=3, iterations=1)
     assert result.shape == (4, 360, 256, 256)
     seconds = benchmark.stats.stats.min
     pairs_per_s = n_rays * n_obj / seconds
