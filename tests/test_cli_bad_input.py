@@ -1,0 +1,115 @@
+"""Every bad input named by the acceptance lists ends as one line with exit code 2.
+
+Each case writes a small phantom and scanner, runs the command line in-process and checks:
+exit code 2, exactly one line on standard error, no traceback, and the line names the file,
+the line and column, and the field, and says what would be valid.
+"""
+
+from __future__ import annotations
+
+import re
+
+import pytest
+
+from simbench.cli import main
+
+PHANTOM = """\
+name: case
+dimension: 2
+objects:
+  - {shape: circle, radius: 40, material: water}
+"""
+
+SCANNER = """\
+name: case
+geometry:
+  type: parallel
+  dimension: 2
+  columns: 64
+  column_pitch: 2 mm
+  views: 8
+source:
+  energy: 60 keV
+exposure:
+  air_counts: 1.0e4
+"""
+
+# (case, file to corrupt, text, expected line number, expected field fragment)
+PHANTOM_CASES = [
+    ("yaml syntax", "name: case\ndimension: 2\nobjects:\n  - {shape: circle, radius: 3\n", 5, None),
+    ("unknown shape", PHANTOM.replace("circle", "hexagon"), 4, "shape"),
+    ("missing field", PHANTOM.replace("radius: 40, ", ""), 4, "radius"),
+    ("extra field", PHANTOM.replace("radius: 40,", "radius: 40, colour: red,"), 4, "colour"),
+    ("zero size", PHANTOM.replace("radius: 40", "radius: 0"), 4, "radius"),
+    ("negative size", PHANTOM.replace("radius: 40", "radius: -4"), 4, "radius"),
+    ("mu without units", PHANTOM.replace("material: water", "mu: 0.02"), 4, "mu"),
+    ("unknown material", PHANTOM.replace("water", "watr"), 4, "material"),
+    ("3-D shape in 2-D", PHANTOM.replace("circle", "sphere"), 4, "shape"),
+    ("NaN", PHANTOM.replace("radius: 40", "radius: .nan"), 4, "radius"),
+    ("inf", PHANTOM.replace("radius: 40", "radius: .inf"), 4, "radius"),
+]
+
+SCANNER_CASES = [
+    ("SDD <= SID", SCANNER.replace("type: parallel\n  dimension: 2",
+                                   "type: fan\n  sid: 500 mm\n  sdd: 500 mm"), 5, "sdd"),
+    ("zero views", SCANNER.replace("views: 8", "views: 0"), 7, "views"),
+    ("negative filter thickness", SCANNER.replace(
+        "energy: 60 keV", "kvp: 100\n  filtration:\n    - {material: aluminium, thickness: -1 mm}"),
+        11, "thickness"),
+    ("kVp out of range", SCANNER.replace("energy: 60 keV", "kvp: 300"), 9, "kvp"),
+    ("energy outside the tables", SCANNER.replace("energy: 60 keV", "energy: 5000 keV"), 9, "energy"),
+    ("zero exposure", SCANNER.replace("air_counts: 1.0e4", "air_counts: 0"), 11, "air_counts"),
+    ("negative exposure", SCANNER.replace("air_counts: 1.0e4", "air_counts: -5"), 11, "air_counts"),
+    ("too many thresholds", SCANNER.replace("energy: 60 keV", "kvp: 120") + (
+        "detector:\n  type: photon-counting\n  thresholds: [20, 30, 40, 50, 60, 70, 80, 90, 100]\n"),
+        14, "thresholds"),
+    ("thresholds not increasing", SCANNER.replace("energy: 60 keV", "kvp: 120") + (
+        "detector:\n  type: photon-counting\n  thresholds: [20, 50, 40]\n"), 14, "thresholds"),
+]
+
+
+def _run(tmp_path, phantom_text, scanner_text, command):
+    phantom = tmp_path / "phantom.yaml"
+    scanner = tmp_path / "scanner.yaml"
+    phantom.write_text(phantom_text)
+    scanner.write_text(scanner_text)
+    if command == "trace":
+        argv = ["trace", str(phantom), str(scanner), "--energy", "60", "-o", str(tmp_path / "p.npy")]
+    else:
+        argv = ["scan", str(phantom), str(scanner), "-o", str(tmp_path / "scan")]
+    return main(argv)
+
+
+def _check(capsys, file_name, line, field):
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1, err
+    text = err[0]
+    assert "Traceback" not in text
+    assert re.search(rf"{file_name}:{line}:\d+", text), text
+    if field is not None:
+        assert field in text, text
+    assert "(valid:" in text, text
+
+
+@pytest.mark.parametrize("case,text,line,field", PHANTOM_CASES, ids=[c[0] for c in PHANTOM_CASES])
+def test_bad_phantom(tmp_path, capsys, case, text, line, field):
+    assert _run(tmp_path, text, SCANNER, "trace") == 2
+    _check(capsys, "phantom.yaml", line, field)
+    assert not (tmp_path / "p.npy").exists()
+
+
+@pytest.mark.parametrize("case,text,line,field", SCANNER_CASES, ids=[c[0] for c in SCANNER_CASES])
+def test_bad_scanner(tmp_path, capsys, case, text, line, field):
+    assert _run(tmp_path, PHANTOM, text, "scan") == 2
+    _check(capsys, "scanner.yaml", line, field)
+    assert not (tmp_path / "scan" / "scan.json").exists()
+
+
+def test_missing_files(tmp_path, capsys):
+    assert main(["trace", str(tmp_path / "none.yaml"), "parallel-bench-2d", "--energy", "60",
+                 "-o", str(tmp_path / "p.npy")]) == 2
+    assert "none.yaml" in capsys.readouterr().err
+    (tmp_path / "phantom.yaml").write_text(PHANTOM)
+    assert main(["scan", str(tmp_path / "phantom.yaml"), str(tmp_path / "none.yaml"),
+                 "-o", str(tmp_path / "scan")]) == 2
+    assert "none.yaml" in capsys.readouterr().err
