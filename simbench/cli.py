@@ -15,7 +15,7 @@ from pathlib import Path
 import numpy as np
 
 import simbench
-from simbench.errors import InputError, InputWarning, Where
+from simbench.errors import InputError, Where
 
 DATA = Path(__file__).resolve().parent / "data"
 
@@ -87,7 +87,8 @@ def _check_output(path: str, suffix: str, option: str = "-o") -> Path:
 def cmd_trace(args: argparse.Namespace) -> int:
     from simbench.atomic import write_json, write_npy
     from simbench.materials import mu_table
-    from simbench.trace import edge_truncation, line_integrals, trace
+    from simbench.execute.scan import warn_if_truncated
+    from simbench.trace import line_integrals, trace
 
     out = _check_output(args.output, ".npy")
     energy = _energy_option(args.energy)
@@ -96,7 +97,7 @@ def cmd_trace(args: argparse.Namespace) -> int:
     started = time.perf_counter()
     path_lengths = trace(phantom, poses)
     seconds = time.perf_counter() - started
-    _warn_truncation(path_lengths, scanner, edge_truncation)
+    warn_if_truncated(path_lengths, scanner.source)
     mu = mu_table(phantom.materials, [energy])[:, 0]
     sinogram = line_integrals(path_lengths, mu)
     write_npy(out, np.ascontiguousarray(sinogram, dtype=np.float64))
@@ -200,15 +201,6 @@ def _energy_option(value: str) -> float:
     from simbench.spec import parse_energy
 
     return parse_energy(value, Where("<command line>", field="--energy"))
-
-
-def _warn_truncation(path_lengths, scanner, edge_truncation) -> None:
-    fraction = edge_truncation(path_lengths)
-    if fraction > 0:
-        warnings.warn(
-            f"{scanner.source}: geometry: the detector does not cover the object in "
-            f"{100 * fraction:.1f} % of views (edge cells see it); projections are truncated",
-            InputWarning, stacklevel=2)
 
 
 class _Parser(argparse.ArgumentParser):

@@ -27,6 +27,19 @@ import simbench
 from simbench.errors import InputError, InputWarning, Where
 
 
+def warn_if_truncated(path_lengths, scanner_source, *, sub_rays: bool = False) -> float:
+    """Warn (one line) when edge cells of the detector see the object; return the fraction
+    of views in which they do (:func:`simbench.trace.edge_truncation`)."""
+    from simbench.trace import edge_truncation
+
+    fraction = edge_truncation(path_lengths, sub_rays=sub_rays)
+    if fraction > 0:
+        warnings.warn(f"{scanner_source}: geometry: the detector does not cover the object in "
+                      f"{100 * fraction:.1f} % of views (edge cells see it); projections are "
+                      "truncated", InputWarning, stacklevel=2)
+    return fraction
+
+
 def scan_identity(phantom, scanner, realization: int = 0) -> tuple:
     """The identity from which a scan's random stream is derived (never execution order)."""
     return ("scan", phantom.name, scanner.name, "realization", int(realization))
@@ -63,7 +76,7 @@ def run_scan(phantom, scanner, out: Path, *, seed: int = 0, noise: bool = True,
     from simbench.geometry import cell_subsamples, focal_spot_points
     from simbench.materials import mu_table
     from simbench.measure import describe, measure, rng_for
-    from simbench.trace import edge_truncation, line_integrals, trace
+    from simbench.trace import line_integrals, trace
 
     if seed < 0:
         raise InputError(Where("<command line>", field="--seed"), f"seed must be >= 0, got {seed}",
@@ -87,10 +100,7 @@ def run_scan(phantom, scanner, out: Path, *, seed: int = 0, noise: bool = True,
     started = time.perf_counter()
     lengths = trace(phantom, poses, cell_samples=cells, spot_samples=spot)
     trace_seconds = time.perf_counter() - started
-    fraction = edge_truncation(lengths)
-    if fraction > 0:
-        warnings.warn(f"{scanner.source}: geometry: the detector does not cover the object in "
-                      f"{100 * fraction:.1f} % of views; projections are truncated", InputWarning)
+    warn_if_truncated(lengths, scanner.source, sub_rays=subrays)
 
     user_spectrum = None
     if src.kind == "file":

@@ -58,7 +58,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from simbench.errors import InputError, Where
-from simbench.spec import Section, check_integer, check_number, parse_energy, parse_length
+from simbench.spec import Section, check_integer, parse_energy, parse_length
 
 #: anode angles (degrees) and spectrum bin widths (keV) the tube-spectrum model accepts
 ANODE_ANGLE_RANGE_DEG = (5.0, 30.0)
@@ -547,7 +547,7 @@ def _check_material(name: str, where: Where) -> None:
 
     try:
         get_material(name)
-    except KeyError as exc:
+    except KeyError:
         raise InputError(where, f"unknown filter material '{name}'",
                          "a catalogue material such as aluminium, copper or water") from None
 
