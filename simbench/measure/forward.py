@@ -23,9 +23,11 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit, prange
+from llvmlite import ir
+from numba import njit, prange, types
+from numba.extending import intrinsic
 
-_CHUNK = 512
+_CHUNK = 256
 
 # Cody-Waite split of ln 2 (high part exact in 32 bits) for the range reduction of exp
 _LOG2E = 1.4426950408889634
@@ -33,45 +35,74 @@ _LN2_HI = 0.6931471803691238
 _LN2_LO = 1.9082149292705877e-10
 #: exponent below which the transmission is taken as exp(-700) (~1e-304)
 _MAX_TAU = 700.0
+# exp(r) on |r| <= ln(2) / 2: the degree-10 polynomial interpolating exp at the 11 Chebyshev
+# nodes of that interval, solved in 40-digit arithmetic and rounded to float64; its error is
+# below 5e-16 relative, as accurate as the degree-12 Taylor series with two terms fewer
+_C0 = 1.0
+_C1 = 1.0000000000000067
+_C2 = 0.5000000000000006
+_C3 = 0.16666666666554406
+_C4 = 0.04166666666657314
+_C5 = 0.008333333385667782
+_C6 = 0.0013888888932488599
+_C7 = 0.00019841170270440067
+_C8 = 2.4801504346997686e-05
+_C9 = 2.764018079620985e-06
+_C10 = 2.7626357241447223e-07
+
+
+@intrinsic
+def _bits_as_float(typingctx, bits):  # pragma: no cover - compiled
+    """Reinterpret the 64 bits of an int64 as a float64 (vectorisable)."""
+    if bits != types.int64:
+        return None
+
+    def codegen(context, builder, signature, args):
+        return builder.bitcast(args[0], ir.DoubleType())
+
+    return types.float64(types.int64), codegen
 
 
 @njit(cache=True, fastmath=True, inline="always")
-def _exp_neg(tau, out, bits):  # pragma: no cover - compiled
-    """out[e] = exp(-tau[e]) for tau >= 0, in vectorisable form.
+def _exp_neg1(tau):  # pragma: no cover - compiled
+    """exp(-tau) for tau >= 0, in vectorisable form.
 
-    ``x = k ln2 + r`` with ``|r| <= ln2 / 2`` (Cody-Waite), ``exp(r)`` by its Taylor series to
-    degree 12 (truncation < 1e-17), ``2^k`` built in the exponent bits. Relative error below
-    3e-14 over [0, 700] (tested against numpy.exp); exponents above 700 are clamped.
+    ``x = k ln2 + r`` with ``|r| <= ln2 / 2`` (Cody-Waite), ``exp(r)`` by a degree-10
+    near-minimax polynomial in Estrin form (short dependency chains), ``2^k`` built in the
+    exponent bits. Relative error below 3e-14 over [0, 700] (tested against numpy.exp);
+    exponents above 700 are clamped. exp(-0) is exactly 1.
     """
-    n = tau.shape[0]
-    for e in range(n):
-        x = -tau[e]
-        if x < -_MAX_TAU:
-            x = -_MAX_TAU
-        k = math.floor(x * _LOG2E + 0.5)
-        r = (x - k * _LN2_HI) - k * _LN2_LO
-        p = 1.0 + r * (1.0 + r * (0.5 + r * (1.0 / 6.0 + r * (1.0 / 24.0 + r * (
-            1.0 / 120.0 + r * (1.0 / 720.0 + r * (1.0 / 5040.0 + r * (1.0 / 40320.0 + r * (
-                1.0 / 362880.0 + r * (1.0 / 3628800.0 + r * (1.0 / 39916800.0 + r * (
-                    1.0 / 479001600.0))))))))))))
-        bits[e] = (np.int64(k) + 1023) << 52
-        out[e] = p
-    scale = bits.view(np.float64)
-    for e in range(n):
-        out[e] *= scale[e]
+    x = -tau
+    if x < -_MAX_TAU:
+        x = -_MAX_TAU
+    k = math.floor(x * _LOG2E + 0.5)
+    r = (x - k * _LN2_HI) - k * _LN2_LO
+    r2 = r * r
+    r4 = r2 * r2
+    p = (((_C0 + _C1 * r) + (_C2 + _C3 * r) * r2)
+         + ((_C4 + _C5 * r) + (_C6 + _C7 * r) * r2) * r4
+         + ((_C8 + _C9 * r) + _C10 * r2) * (r4 * r4))
+    return p * _bits_as_float((np.int64(k) + 1023) << 52)
 
 
 @njit(cache=True)
 def exp_neg(tau):  # pragma: no cover - compiled
     """exp(-tau) with the kernel's vectorised exponential (for tests)."""
     out = np.empty_like(tau)
-    bits = np.empty(tau.shape[0], dtype=np.int64)
-    _exp_neg(tau, out, bits)
+    for e in range(tau.shape[0]):
+        out[e] = _exp_neg1(tau[e])
     return out
 
 
 @njit(parallel=True, cache=True, fastmath=True)
 def _expected_kernel(lengths, mu, weights, out):  # pragma: no cover - compiled
+    """out[b, p] = mean_s sum_e W[b, e] exp(-sum_m mu[m, e] L[m, p, s]).
+
+    Per ray: the optical depth of every energy, the first crossed material assigning it (no
+    zeroing pass), the others adding to it; then one fused loop over energies computes the
+    exponential and accumulates it into three rows at once in registers (``n_bins == 3``, the
+    energy-integrating case; other counts go through a transmission buffer).
+    """
     n_mat, n_cells, n_sub = lengths.shape
     n_bins, n_energy = weights.shape
     air = np.zeros(n_bins)
@@ -80,12 +111,14 @@ def _expected_kernel(lengths, mu, weights, out):  # pragma: no cover - compiled
         for e in range(n_energy):
             s += weights[b, e]
         air[b] = s
+    fused = n_bins == 3
     n_chunks = (n_cells + _CHUNK - 1) // _CHUNK
     for c in prange(n_chunks):
         acc = np.empty(n_bins)
         tau = np.empty(n_energy)
-        trans = np.empty(n_energy)
-        bits = np.empty(n_energy, dtype=np.int64)
+        w0 = weights[0]
+        w1 = weights[min(1, n_bins - 1)]
+        w2 = weights[min(2, n_bins - 1)]
         stop = min(n_cells, (c + 1) * _CHUNK)
         for p in range(c * _CHUNK, stop):
             for b in range(n_bins):
@@ -95,22 +128,37 @@ def _expected_kernel(lengths, mu, weights, out):  # pragma: no cover - compiled
                 for m in range(n_mat):
                     v = lengths[m, p, s]
                     if v != 0.0:
-                        if not crossed:
+                        mu_m = mu[m]
+                        if crossed:
                             for e in range(n_energy):
-                                tau[e] = 0.0
+                                tau[e] += mu_m[e] * v
+                        else:
+                            for e in range(n_energy):
+                                tau[e] = mu_m[e] * v
                             crossed = True
-                        for e in range(n_energy):
-                            tau[e] += mu[m, e] * v
                 if not crossed:
                     for b in range(n_bins):
                         acc[b] += air[b]
-                    continue
-                _exp_neg(tau, trans, bits)
-                for b in range(n_bins):
-                    t = 0.0
+                elif fused:
+                    s0 = 0.0
+                    s1 = 0.0
+                    s2 = 0.0
                     for e in range(n_energy):
-                        t += weights[b, e] * trans[e]
-                    acc[b] += t
+                        y = _exp_neg1(tau[e])
+                        s0 += w0[e] * y
+                        s1 += w1[e] * y
+                        s2 += w2[e] * y
+                    acc[0] += s0
+                    acc[1] += s1
+                    acc[2] += s2
+                else:
+                    for e in range(n_energy):
+                        tau[e] = _exp_neg1(tau[e])
+                    for b in range(n_bins):
+                        t = 0.0
+                        for e in range(n_energy):
+                            t += weights[b, e] * tau[e]
+                        acc[b] += t
             for b in range(n_bins):
                 out[b, p] = acc[b] / n_sub
 
