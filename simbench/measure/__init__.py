@@ -37,8 +37,8 @@ from simbench.measure.config import (
     parse_source,
 )
 from simbench.measure.detector import (
-    apply_lag,
     apply_psf,
+    apply_readout,
     detector_pattern,
     response_weights,
     sensor_efficiency,
@@ -337,9 +337,7 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
     # detector: PSF, lag, gain, readout, defects
     scan = apply_psf(scan, det, pitch, cell_axes)
     flat = apply_psf(flat, det, pitch, cell_axes)
-    # scan is a fresh array here (counting noise or a copy): lag and gain work in place
     scan = np.ascontiguousarray(scan, dtype=np.float64)
-    scan = apply_lag(scan, det.lag, view_axis=1, in_place=True)
     n_rows = 1 if two_d else shape[1]
     pattern = detector_pattern(det, n_rows, shape[-1])
     cells_shape = (shape[-1],) if two_d else (n_rows, shape[-1])
@@ -347,20 +345,23 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
     drift = pattern.drift.reshape(cells_shape)
     dead = pattern.dead.reshape(cells_shape)
     hot = pattern.hot.reshape(cells_shape)
-    scan *= gain * drift * ~dead
-    flat = flat * (gain * ~dead)
     sigma = det.electronic_noise
-    scan += det.dark_level
+    noisy_readout = noise and sigma > 0
+    # lag, gain with drift, dark level, electronic noise, saturation and hot cells in one pass
+    # over the scan (in place: scan is a fresh array here, from the counting noise or a copy)
+    apply_readout(scan.reshape(scan.shape[0], shape[0], -1), lag=det.lag,
+                  gain=(gain * drift * ~dead).reshape(-1), dark_level=det.dark_level,
+                  electronic_noise=sigma,
+                  normals=streams[2].standard_normal(scan.shape) if noisy_readout else None,
+                  full_scale=det.full_scale, hot=hot.reshape(-1))
+    flat = flat * (gain * ~dead)
     flat += det.dark_level
     dark = np.full(flat.shape, det.dark_level, dtype=np.float64)
-    if noise and sigma > 0:
-        scan += sigma * streams[2].standard_normal(scan.shape)
+    if noisy_readout:
         flat += sigma / np.sqrt(det.flat_frames) * streams[3].standard_normal(flat.shape)
         dark += sigma / np.sqrt(det.dark_frames) * streams[4].standard_normal(dark.shape)
     if det.full_scale is not None:
-        scan = np.minimum(scan, det.full_scale)
         flat = np.minimum(flat, det.full_scale)
-        scan[..., hot] = det.full_scale
         flat[..., hot] = det.full_scale
 
     projections, starvation = log_normalize(scan, flat, dark, view_axis=1,

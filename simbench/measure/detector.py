@@ -285,6 +285,42 @@ def detector_pattern(detector: DetectorConfig, n_rows: int, n_cols: int) -> Dete
 # --------------------------------------------------------------------------------------------
 
 
+def _gaussian_weights(sigma: float, truncate: float = 4.0) -> np.ndarray:
+    """Normalised Gaussian taps of ``scipy.ndimage.gaussian_filter1d`` (same radius rule)."""
+    radius = int(truncate * float(sigma) + 0.5)
+    x = np.arange(-radius, radius + 1, dtype=np.float64)
+    phi = np.exp(-0.5 / (sigma * sigma) * x * x)
+    return phi / phi.sum()
+
+
+@njit(parallel=True, cache=True)
+def _rows_psf_kernel(x, taps, c, out):  # pragma: no cover - compiled
+    """Symmetric FIR ``taps`` then ``[c, 1 - 2c, c]`` along the last axis of (N, C) rows.
+
+    Edge cells repeated outward ('nearest') before each of the two filters, as
+    ``scipy.ndimage`` does; rows in parallel, each with its own fixed order.
+    """
+    n_rows, n = x.shape
+    radius = (taps.shape[0] - 1) // 2
+    centre = 1.0 - 2.0 * c
+    for r in prange(n_rows):
+        row = x[r]
+        tmp = np.empty(n)
+        for j in range(n):
+            t = 0.0
+            for k in range(taps.shape[0]):
+                i = min(max(j + k - radius, 0), n - 1)
+                t += taps[k] * row[i]
+            tmp[j] = t
+        dst = out[r]
+        if c == 0.0:
+            for j in range(n):
+                dst[j] = tmp[j]
+        else:
+            for j in range(n):
+                dst[j] = c * tmp[max(j - 1, 0)] + centre * tmp[j] + c * tmp[min(j + 1, n - 1)]
+
+
 def apply_psf(values: np.ndarray, detector: DetectorConfig, pitch_mm: tuple[float, float],
               cell_axes: tuple[int, ...]) -> np.ndarray:
     """Gaussian blur and nearest-neighbour cross-talk along the detector axes.
@@ -306,16 +342,30 @@ def apply_psf(values: np.ndarray, detector: DetectorConfig, pitch_mm: tuple[floa
     -----
     Gaussian of ``sigma = FWHM / (2 sqrt(2 ln 2)) / pitch`` cells, then the kernel
     ``[c, 1 - 2c, c]``; both preserve the total signal away from the edges (edge cells are
-    repeated outward).
+    repeated outward). Along the last (contiguous) axis both filters run in one parallel pass
+    with the taps and edge rule of ``scipy.ndimage.gaussian_filter1d`` / ``convolve1d``
+    (truncated at 4 sigma); other axes use ``scipy.ndimage`` itself.
     """
     out = values
     for i, axis in enumerate(cell_axes):
         fwhm = detector.blur_fwhm_mm[i]
+        c = float(detector.crosstalk)
+        if not (fwhm > 0 or c > 0):
+            continue
+        last = axis in (-1, out.ndim - 1)
+        if last and out.ndim >= 1 and out.shape[-1] > 0:
+            taps = (_gaussian_weights(fwhm / FWHM_PER_SIGMA / pitch_mm[i]) if fwhm > 0
+                    else np.ones(1))
+            src = np.ascontiguousarray(out, dtype=np.float64)
+            rows = src.reshape(-1, src.shape[-1])
+            res = np.empty_like(rows)
+            _rows_psf_kernel(rows, taps, c, res)
+            out = res.reshape(src.shape)
+            continue
         if fwhm > 0:
             sigma = fwhm / FWHM_PER_SIGMA / pitch_mm[i]
             out = ndimage.gaussian_filter1d(out, sigma, axis=axis, mode="nearest", truncate=4.0)
-        if detector.crosstalk > 0:
-            c = detector.crosstalk
+        if c > 0:
             out = ndimage.convolve1d(out, np.array([c, 1.0 - 2.0 * c, c]), axis=axis,
                                      mode="nearest")
     return out
@@ -371,3 +421,86 @@ def apply_lag(values: np.ndarray, lag: float, view_axis: int, *,
     _lag_kernel(work.reshape(work.shape[0], -1), float(lag))
     moved[...] = work
     return y
+
+
+@njit(parallel=True, cache=True)
+def _readout_kernel(scan, lag, gain, offset, sigma, normals, full_scale, hot):  # pragma: no cover
+    """In place on (B, V, N): lag along V, then gain, offset, noise, saturation, hot cells.
+
+    Columns in parallel (chunks of 512 cells of each output row), views in order; every value
+    has a fixed formula and order, so the result does not depend on the number of threads.
+    ``normals`` is (B, V, N) standard normal deviates, or empty (no electronic noise).
+    """
+    n_out, n_views, n = scan.shape
+    keep = 1.0 - lag
+    noisy = normals.shape[0] > 0
+    n_chunks = (n + 511) // 512
+    for task in prange(n_out * n_chunks):
+        b = task // n_chunks
+        start = (task % n_chunks) * 512
+        stop = min(n, start + 512)
+        prev = np.empty(stop - start)
+        for v in range(n_views):
+            for j in range(start, stop):
+                x = scan[b, v, j]
+                if lag > 0.0 and v > 0:
+                    x = keep * x + lag * prev[j - start]
+                prev[j - start] = x
+                y = x * gain[j] + offset
+                if noisy:
+                    y += sigma * normals[b, v, j]
+                if y > full_scale:
+                    y = full_scale
+                if hot[j]:
+                    y = full_scale
+                scan[b, v, j] = y
+
+
+def apply_readout(scan: np.ndarray, *, lag: float, gain: np.ndarray, dark_level: float,
+                  electronic_noise: float = 0.0, normals: np.ndarray | None = None,
+                  full_scale: float | None = None, hot: np.ndarray | None = None) -> np.ndarray:
+    """Lag, gain, dark level, electronic noise, saturation and hot cells of a scan, in place.
+
+    Parameters
+    ----------
+    scan : C-contiguous float64 (B, V, N)
+        Signal of B output rows, V views and N cells (rows x columns flattened); overwritten.
+    lag : float
+        Fraction a in [0, 1) of a view's signal read in the next view.
+    gain : float64 (N,)
+        Gain of every cell (0 for dead cells).
+    dark_level : float
+        Offset added to every reading, counts.
+    electronic_noise : float
+        rms of the electronic noise of a reading, counts.
+    normals : float64 (B, V, N), optional
+        One standard normal deviate per reading (no electronic noise without them).
+    full_scale : float, optional
+        Saturation level; hot cells read it.
+    hot : bool (N,), optional
+        Hot cells (only with ``full_scale``).
+
+    Returns
+    -------
+    scan
+
+    Notes
+    -----
+    One pass, per cell and view ``v``: ``y[v] = (1 - a) x[v] + a y[v - 1]`` (``y[0] = x[0]``,
+    as :func:`apply_lag`), then ``min(y[v] g + dark + noise, full_scale)``, or ``full_scale``
+    for a hot cell, with ``noise = electronic_noise * normals``: the same formulas, in the
+    same order, as the separate steps.
+    """
+    if not (scan.dtype == np.float64 and scan.flags.c_contiguous and scan.ndim == 3):
+        raise ValueError("apply_readout needs a C-contiguous float64 (B, V, N) array")
+    n = scan.shape[2]
+    gain = np.ascontiguousarray(gain, dtype=np.float64).reshape(n)
+    noisy = normals is not None and electronic_noise > 0
+    normals = (np.ascontiguousarray(normals, dtype=np.float64).reshape(scan.shape) if noisy
+               else np.empty((0, 0, 0)))
+    top = np.inf if full_scale is None else float(full_scale)
+    hot_arr = (np.zeros(n, dtype=np.bool_) if hot is None or full_scale is None
+               else np.ascontiguousarray(hot, dtype=np.bool_).reshape(n))
+    _readout_kernel(scan, float(lag) if lag > 0 else 0.0, gain, float(dark_level),
+                    float(electronic_noise), normals, top, hot_arr)
+    return scan
