@@ -44,7 +44,7 @@ from simbench.measure.detector import (
     sensor_efficiency,
 )
 from simbench.measure.forward import expected_per_energy, expected_signal
-from simbench.measure.noise import compound_counts, poisson_counts, rng_for
+from simbench.measure.noise import compound_counts, poisson_counts, rng_for, standard_normals
 from simbench.measure.scatter import scatter_signal
 
 __all__ = [
@@ -234,8 +234,6 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
     lengths = np.asarray(path_lengths, dtype=np.float64)
     if lengths.ndim < 3:
         raise ValueError("path_lengths must be shaped (n_materials, views, [rows,] cols[, sub-rays])")
-    if lengths.size and not (np.isfinite(lengths.min()) and np.isfinite(lengths.max())):
-        raise ValueError("path_lengths contain NaN or inf")
     shape, subrays, pitch, sdd = _geometry(lengths, poses, pitch_mm, sdd_mm, subrays)
     src, exposure, det, sca = physics.source, physics.exposure, physics.detector, physics.scatter
     if isinstance(rng, (int, np.integer)):
@@ -273,7 +271,8 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
 
     # energies that reach no output (zero fluence, or outside every bin) are skipped
     keep = np.any(weights != 0, axis=0)
-    # expected primary of every output row: (B', V, [R,] C)
+    # expected primary of every output row: (B', V, [R,] C); NaN or infinite path lengths
+    # raise ValueError here (checked inside the kernel's pass)
     primary = expected_signal(lengths, mu[:, keep], weights[:, keep], subrays)
     air = weights.sum(axis=1)
     two_d = len(shape) == 2
@@ -300,6 +299,7 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
         total = primary
 
     streams = rng.spawn(5) if noise else [None] * 5
+    z_readout = []  # readout normal deviates of the scan when drawn with the counting noise
     flat_shape = shape[1:]
 
     # counting noise -> signal (B, V, [R,] C) and flat signal (B, [R,] C)
@@ -329,7 +329,13 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
             def exact_flat(cells):
                 return np.broadcast_to(detected[keep], (cells.size, rel.size)), rel
 
-            scan = compound_counts(total[0], total[1], total[2], streams[0], exact_scan)[None]
+            # the scan's normal deviates of the counting and of the electronic noise, drawn
+            # from their two streams at once
+            z_count, *z_readout = standard_normals(
+                (streams[0], (total[0].size,)),
+                *([(streams[2], (1,) + total[0].shape)] if det.electronic_noise > 0 else []))
+            scan = compound_counts(total[0], total[1], total[2], streams[0], exact_scan,
+                                   normals=z_count)[None]
             flat = compound_counts(np.array(air_cells[0]), np.array(air_cells[1]),
                                    np.array(air_cells[2]), streams[1], exact_flat,
                                    det.flat_frames)[None]
@@ -352,7 +358,8 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
     apply_readout(scan.reshape(scan.shape[0], shape[0], -1), lag=det.lag,
                   gain=(gain * drift * ~dead).reshape(-1), dark_level=det.dark_level,
                   electronic_noise=sigma,
-                  normals=streams[2].standard_normal(scan.shape) if noisy_readout else None,
+                  normals=((z_readout[0] if z_readout else streams[2].standard_normal(scan.shape))
+                           if noisy_readout else None),
                   full_scale=det.full_scale, hot=hot.reshape(-1))
     flat = flat * (gain * ~dead)
     flat += det.dark_level

@@ -41,6 +41,17 @@ def _floored_signal(counts, dark, floor, out):  # pragma: no cover - compiled
     return starved
 
 
+@njit(parallel=True, cache=True)
+def _minus_log(log_air, log_signal, out):  # pragma: no cover - compiled
+    """``out[i, v, j] = log_air[i, j] - log_signal[i, v, j]``, rounded to out's dtype."""
+    n_pre, n_views, n_post = log_signal.shape
+    for task in prange(n_pre * n_views):
+        i = task // n_views
+        v = task % n_views
+        for j in range(n_post):
+            out[i, v, j] = log_air[i, j] - log_signal[i, v, j]
+
+
 def log_normalize(counts: np.ndarray, flat: np.ndarray, dark: np.ndarray, *, view_axis: int = 0,
                   floor: float = DEFAULT_FLOOR_COUNTS,
                   dtype=np.float64) -> tuple[np.ndarray, dict]:
@@ -100,8 +111,11 @@ def log_normalize(counts: np.ndarray, flat: np.ndarray, dark: np.ndarray, *, vie
     n_starved = _floored_signal(counts.reshape(n_pre, n_views, n_post), dark, float(floor),
                                 signal)
     np.log(signal, out=signal)
-    p = signal if np.dtype(dtype) == np.float64 else np.empty(signal.shape, dtype=dtype)
-    np.subtract(log_air[:, None, :], signal, out=p)
+    if np.dtype(dtype) in (np.float32, np.float64):
+        p = signal if np.dtype(dtype) == np.float64 else np.empty(signal.shape, dtype=dtype)
+        _minus_log(log_air, signal, p)
+    else:
+        p = (log_air[:, None, :] - signal).astype(dtype)
     p = p.reshape(counts.shape)
     record = {
         "floor_counts": float(floor),

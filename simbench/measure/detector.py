@@ -303,22 +303,47 @@ def _rows_psf_kernel(x, taps, c, out):  # pragma: no cover - compiled
     n_rows, n = x.shape
     radius = (taps.shape[0] - 1) // 2
     centre = 1.0 - 2.0 * c
+    n_taps = taps.shape[0]
     for r in prange(n_rows):
         row = x[r]
         tmp = np.empty(n)
-        for j in range(n):
-            t = 0.0
-            for k in range(taps.shape[0]):
-                i = min(max(j + k - radius, 0), n - 1)
-                t += taps[k] * row[i]
-            tmp[j] = t
+        # edges (indices clamped), then the interior with no clamping (vectorisable)
+        lo = min(radius, n)
+        hi = max(n - radius, lo)
+        for part in range(2):
+            for j in range(0, lo) if part == 0 else range(hi, n):
+                t = 0.0
+                for k in range(n_taps):
+                    i = min(max(j + k - radius, 0), n - 1)
+                    t += taps[k] * row[i]
+                tmp[j] = t
+        # (slices indexed from 0, so that the loops carry no negative-index checks)
+        inner = tmp[lo:hi]
+        n_inner = hi - lo
+        for k in range(n_taps):
+            w = taps[k]
+            src = row[lo - radius + k:lo - radius + k + n_inner]
+            if k == 0:
+                for i in range(n_inner):
+                    inner[i] = w * src[i]
+            else:
+                for i in range(n_inner):
+                    inner[i] += w * src[i]
         dst = out[r]
         if c == 0.0:
             for j in range(n):
                 dst[j] = tmp[j]
+        elif n == 1:
+            dst[0] = tmp[0]
         else:
-            for j in range(n):
-                dst[j] = c * tmp[max(j - 1, 0)] + centre * tmp[j] + c * tmp[min(j + 1, n - 1)]
+            dst[0] = c * tmp[0] + centre * tmp[0] + c * tmp[1]
+            left = tmp[0:n - 2]
+            mid = tmp[1:n - 1]
+            right = tmp[2:n]
+            dst_mid = dst[1:n - 1]
+            for i in range(n - 2):
+                dst_mid[i] = c * left[i] + centre * mid[i] + c * right[i]
+            dst[n - 1] = c * tmp[n - 2] + centre * tmp[n - 1] + c * tmp[n - 1]
 
 
 def apply_psf(values: np.ndarray, detector: DetectorConfig, pitch_mm: tuple[float, float],

@@ -14,8 +14,10 @@ The kernel runs in numba over chunks of cells with float64 accumulation. Each ce
 fixed order (fixed at compile time), so the result does not depend on the number of threads.
 Rays that cross no material take a precomputed shortcut (exp(0) = 1, exactly). The exponential
 is evaluated in a vectorisable form (:func:`exp_neg`, relative error below 3e-14) and the
-kernel is compiled with ``fastmath``, which lets the sums over energy be vectorised: this is
-the hot loop of every simulated scan, and its results agree with the plain formula to ~1e-14.
+kernel is compiled with fast-math reassociation and contraction (not the no-NaN/no-inf
+assumptions), which lets the sums over energy be vectorised: this is the hot loop of every
+simulated scan, and its results agree with the plain formula to ~1e-14. The same pass counts
+NaN or infinite path lengths, which are refused.
 """
 
 from __future__ import annotations
@@ -28,6 +30,9 @@ from numba import njit, prange, types
 from numba.extending import intrinsic
 
 _CHUNK = 256
+#: fast-math flags of the kernel: reassociation (vectorised sums) and contraction (FMA), but
+#: not the "no NaN / no inf" assumptions, so that the check of the path lengths holds
+_FAST = {"nsz", "arcp", "contract", "afn", "reassoc"}
 
 # Cody-Waite split of ln 2 (high part exact in 32 bits) for the range reduction of exp
 _LOG2E = 1.4426950408889634
@@ -63,7 +68,7 @@ def _bits_as_float(typingctx, bits):  # pragma: no cover - compiled
     return types.float64(types.int64), codegen
 
 
-@njit(cache=True, fastmath=True, inline="always")
+@njit(cache=True, fastmath=_FAST, inline="always")
 def _exp_neg1(tau):  # pragma: no cover - compiled
     """exp(-tau) for tau >= 0, in vectorisable form.
 
@@ -94,9 +99,10 @@ def exp_neg(tau):  # pragma: no cover - compiled
     return out
 
 
-@njit(parallel=True, cache=True, fastmath=True)
+@njit(parallel=True, cache=True, fastmath=_FAST)
 def _expected_kernel(lengths, mu, weights, out):  # pragma: no cover - compiled
-    """out[b, p] = mean_s sum_e W[b, e] exp(-sum_m mu[m, e] L[m, p, s]).
+    """out[b, p] = mean_s sum_e W[b, e] exp(-sum_m mu[m, e] L[m, p, s]); returns the number
+    of path lengths that are NaN or infinite (checked on the way, no extra pass).
 
     Per ray: the optical depth of every energy, the first crossed material assigning it (no
     zeroing pass), the others adding to it; then one fused loop over energies computes the
@@ -113,7 +119,9 @@ def _expected_kernel(lengths, mu, weights, out):  # pragma: no cover - compiled
         air[b] = s
     fused = n_bins == 3
     n_chunks = (n_cells + _CHUNK - 1) // _CHUNK
+    bad = 0
     for c in prange(n_chunks):
+        bad_here = 0
         acc = np.empty(n_bins)
         tau = np.empty(n_energy)
         w0 = weights[0]
@@ -127,6 +135,7 @@ def _expected_kernel(lengths, mu, weights, out):  # pragma: no cover - compiled
                 crossed = False
                 for m in range(n_mat):
                     v = lengths[m, p, s]
+                    bad_here += not math.isfinite(v)
                     if v != 0.0:
                         mu_m = mu[m]
                         if crossed:
@@ -161,6 +170,8 @@ def _expected_kernel(lengths, mu, weights, out):  # pragma: no cover - compiled
                         acc[b] += t
             for b in range(n_bins):
                 out[b, p] = acc[b] / n_sub
+        bad += bad_here
+    return bad
 
 
 def expected_signal(path_lengths: np.ndarray, mu_per_mm: np.ndarray, weights: np.ndarray,
@@ -181,6 +192,11 @@ def expected_signal(path_lengths: np.ndarray, mu_per_mm: np.ndarray, weights: np
     Returns
     -------
     float64 (B, *projection shape)
+
+    Raises
+    ------
+    ValueError
+        If a path length is NaN or infinite.
 
     Notes
     -----
@@ -214,7 +230,8 @@ def expected_signal(path_lengths: np.ndarray, mu_per_mm: np.ndarray, weights: np
     mu_pad[:, :mu.shape[1]] = mu
     w_pad = np.zeros((w.shape[0], n_pad))
     w_pad[:, :w.shape[1]] = w
-    _expected_kernel(flat, mu_pad, w_pad, out)
+    if _expected_kernel(flat, mu_pad, w_pad, out):
+        raise ValueError("path_lengths contain NaN or inf")
     return out.reshape((w.shape[0],) + tuple(shape))
 
 

@@ -31,10 +31,13 @@ from __future__ import annotations
 
 import hashlib
 import math
+import threading
 
 import numpy as np
 from numba import njit, prange
 
+#: draws of at least this many values (in all) are filled in parallel threads
+PARALLEL_DRAW_MIN = 1 << 17
 #: expected photons per reading above which energy-integrating noise is drawn as a normal law
 #: with the exact compound-Poisson mean and variance
 GAUSSIAN_MIN_PHOTONS = 50.0
@@ -102,6 +105,39 @@ def poisson_counts(expected: np.ndarray, rng: np.random.Generator, frames: int =
     return rng.poisson(expected * frames).astype(np.float64) / frames
 
 
+def standard_normals(*requests: tuple[np.random.Generator, tuple[int, ...]]) -> list[np.ndarray]:
+    """Standard normal deviates from several independent streams, filled concurrently.
+
+    Parameters
+    ----------
+    *requests : (numpy.random.Generator, shape)
+        One stream and the shape to draw from it.
+
+    Returns
+    -------
+    list of float64 arrays
+        ``rng.standard_normal(shape)`` for every request: each stream gives exactly the values
+        it gives alone (numpy fills each array in one call, releasing the GIL), so the result
+        does not depend on the number of threads or on their timing.
+    """
+    out = [np.empty(shape) for _, shape in requests]
+    jobs = [(rng, a) for (rng, _), a in zip(requests, out)]
+    if len(jobs) < 2 or sum(a.size for a in out) < PARALLEL_DRAW_MIN:
+        for rng, a in jobs:
+            rng.standard_normal(out=a)
+        return out
+    threads = [threading.Thread(target=rng.standard_normal, kwargs={"out": a})
+               for rng, a in jobs[1:]]
+    for t in threads:
+        t.start()
+    try:
+        jobs[0][0].standard_normal(out=jobs[0][1])
+    finally:
+        for t in threads:
+            t.join()
+    return out
+
+
 @njit(parallel=True, cache=True)
 def _normal_signal(m1, m2, scale, z):  # pragma: no cover - compiled
     """In place: ``z[i] <- m1[i] + sqrt(m2[i] * scale) * z[i]`` (one pass, no temporaries)."""
@@ -110,7 +146,8 @@ def _normal_signal(m1, m2, scale, z):  # pragma: no cover - compiled
 
 
 def compound_counts(m0: np.ndarray, m1: np.ndarray, m2: np.ndarray, rng: np.random.Generator,
-                    exact_bins, frames: int = 1) -> np.ndarray:
+                    exact_bins, frames: int = 1, *, normals: np.ndarray | None = None
+                    ) -> np.ndarray:
     """Energy-integrating signal: compound Poisson of moments (M0, M1, M2) per cell.
 
     Parameters
@@ -123,6 +160,9 @@ def compound_counts(m0: np.ndarray, m1: np.ndarray, m2: np.ndarray, rng: np.rand
         flat cells ``index`` and the signal weight per bin, for the exact draw of dark cells.
     frames : int
         Number of readings averaged.
+    normals : float64 array of m0's size, optional
+        The first ``m0.size`` standard normal deviates of ``rng``, drawn beforehand (e.g. by
+        :func:`standard_normals`, alongside other streams); overwritten with the result.
 
     Returns
     -------
@@ -135,7 +175,12 @@ def compound_counts(m0: np.ndarray, m1: np.ndarray, m2: np.ndarray, rng: np.rand
     and in cell order; then one Poisson draw per energy bin of every dark cell, in cell order.
     """
     flat_m0 = m0.reshape(-1)
-    out = rng.standard_normal(flat_m0.shape[0])
+    if normals is None:
+        out = rng.standard_normal(flat_m0.shape[0])
+    else:
+        out = normals.reshape(-1)
+        if out.shape[0] != flat_m0.shape[0] or out.dtype != np.float64:
+            raise ValueError(f"normals must hold {flat_m0.shape[0]} float64 values")
     _normal_signal(np.ascontiguousarray(m1, dtype=np.float64).reshape(-1),
                    np.ascontiguousarray(m2, dtype=np.float64).reshape(-1), 1.0 / frames, out)
     dark = np.flatnonzero(flat_m0 < GAUSSIAN_MIN_PHOTONS / frames)
