@@ -41,6 +41,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 from numba import njit, prange
@@ -124,13 +125,26 @@ def deposited_energy_kev(energies_kev: np.ndarray, detector: DetectorConfig) -> 
     The spread of deposited energies of one incident energy is not modelled.
     """
     energies = np.asarray(energies_kev, dtype=np.float64)
-    spec = sensor_material(detector)
-    if spec is None:
+    if detector.material is None:
         return energies.copy()
+    return energies * _absorbed_fraction(detector.material, detector.density_g_cm3,
+                                         energies.tobytes())
+
+
+@lru_cache(maxsize=32)
+def _absorbed_fraction(material: str, density_g_cm3: float, energies_bytes: bytes) -> np.ndarray:
+    """``mu_en / mu`` of the sensor on the given energies (read-only, kept for reuse).
+
+    Cached: every realization of a scan needs the same values, and their computation calls
+    xraylib's own threaded routines, which would compete with the measurement's kernels.
+    """
     from simbench.materials import mass_attenuation_cm2_g, mass_energy_absorption_cm2_g
 
+    energies = np.frombuffer(energies_bytes, dtype=np.float64)
+    spec = sensor_material(DetectorConfig(material=material, density_g_cm3=density_g_cm3))
     ratio = mass_energy_absorption_cm2_g(spec, energies) / mass_attenuation_cm2_g(spec, energies)
-    return energies * ratio
+    ratio.setflags(write=False)
+    return ratio
 
 
 def swank_factor(photons: np.ndarray, weight: np.ndarray) -> float:
