@@ -44,7 +44,12 @@ from simbench.measure.detector import (
     sensor_efficiency,
 )
 from simbench.measure.forward import expected_per_energy, expected_signal
-from simbench.measure.noise import compound_counts, poisson_counts, rng_for, standard_normals
+from simbench.measure.noise import (
+    compound_counts,
+    poisson_counts,
+    rng_for,
+    start_standard_normals,
+)
 from simbench.measure.scatter import scatter_signal
 
 __all__ = [
@@ -269,6 +274,16 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
                                  f"a spectrum ending at {energies.max():g} keV",
                                  "thresholds below the source's highest energy")
 
+    streams = rng.spawn(5) if noise else [None] * 5
+    # The normal deviates of an energy-integrating scan (counting noise, electronic noise) are
+    # drawn by numpy in a background thread while the forward kernel runs; they are the values
+    # of each stream alone, whatever the timing.
+    wait_normals = None
+    if noise and not det.photon_counting and energies.size != 1:
+        wait_normals = start_standard_normals(
+            (streams[0], (int(np.prod(shape)),)),
+            *([(streams[2], (1,) + tuple(shape))] if det.electronic_noise > 0 else []))
+
     # energies that reach no output (zero fluence, or outside every bin) are skipped
     keep = np.any(weights != 0, axis=0)
     # expected primary of every output row: (B', V, [R,] C); NaN or infinite path lengths
@@ -298,7 +313,6 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
     else:
         total = primary
 
-    streams = rng.spawn(5) if noise else [None] * 5
     z_readout = []  # readout normal deviates of the scan when drawn with the counting noise
     flat_shape = shape[1:]
 
@@ -329,11 +343,7 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
             def exact_flat(cells):
                 return np.broadcast_to(detected[keep], (cells.size, rel.size)), rel
 
-            # the scan's normal deviates of the counting and of the electronic noise, drawn
-            # from their two streams at once
-            z_count, *z_readout = standard_normals(
-                (streams[0], (total[0].size,)),
-                *([(streams[2], (1,) + total[0].shape)] if det.electronic_noise > 0 else []))
+            z_count, *z_readout = wait_normals()
             scan = compound_counts(total[0], total[1], total[2], streams[0], exact_scan,
                                    normals=z_count)[None]
             flat = compound_counts(np.array(air_cells[0]), np.array(air_cells[1]),

@@ -36,8 +36,6 @@ import threading
 import numpy as np
 from numba import njit, prange
 
-#: draws of at least this many values (in all) are filled in parallel threads
-PARALLEL_DRAW_MIN = 1 << 17
 #: expected photons per reading above which energy-integrating noise is drawn as a normal law
 #: with the exact compound-Poisson mean and variance
 GAUSSIAN_MIN_PHOTONS = 50.0
@@ -105,37 +103,42 @@ def poisson_counts(expected: np.ndarray, rng: np.random.Generator, frames: int =
     return rng.poisson(expected * frames).astype(np.float64) / frames
 
 
-def standard_normals(*requests: tuple[np.random.Generator, tuple[int, ...]]) -> list[np.ndarray]:
-    """Standard normal deviates from several independent streams, filled concurrently.
+def start_standard_normals(*requests: tuple[np.random.Generator, tuple[int, ...]]):
+    """Draw standard normal deviates in a background thread, to overlap other work.
 
     Parameters
     ----------
     *requests : (numpy.random.Generator, shape)
-        One stream and the shape to draw from it.
+        One stream and the shape to draw from it, drawn in this order.
 
     Returns
     -------
-    list of float64 arrays
-        ``rng.standard_normal(shape)`` for every request: each stream gives exactly the values
-        it gives alone (numpy fills each array in one call, releasing the GIL), so the result
-        does not depend on the number of threads or on their timing.
+    callable
+        ``wait()`` -> list of float64 arrays, ``rng.standard_normal(shape)`` for every request:
+        each stream gives exactly the values it gives alone, whatever the timing (numpy
+        releases the GIL while it fills an array). ``wait()`` re-raises whatever the drawing
+        raised; the streams must not be used before it returns.
     """
-    out = [np.empty(shape) for _, shape in requests]
-    jobs = [(rng, a) for (rng, _), a in zip(requests, out)]
-    if len(jobs) < 2 or sum(a.size for a in out) < PARALLEL_DRAW_MIN:
-        for rng, a in jobs:
-            rng.standard_normal(out=a)
-        return out
-    threads = [threading.Thread(target=rng.standard_normal, kwargs={"out": a})
-               for rng, a in jobs[1:]]
-    for t in threads:
-        t.start()
-    try:
-        jobs[0][0].standard_normal(out=jobs[0][1])
-    finally:
-        for t in threads:
-            t.join()
-    return out
+    result: list = []
+    failure: list = []
+
+    def work():
+        try:
+            for rng, shape in requests:
+                result.append(rng.standard_normal(shape))
+        except BaseException as exc:  # handed to the caller by wait()
+            failure.append(exc)
+
+    thread = threading.Thread(target=work, daemon=True)
+    thread.start()
+
+    def wait() -> list[np.ndarray]:
+        thread.join()
+        if failure:
+            raise failure[0]
+        return result
+
+    return wait
 
 
 @njit(parallel=True, cache=True)
@@ -162,7 +165,7 @@ def compound_counts(m0: np.ndarray, m1: np.ndarray, m2: np.ndarray, rng: np.rand
         Number of readings averaged.
     normals : float64 array of m0's size, optional
         The first ``m0.size`` standard normal deviates of ``rng``, drawn beforehand (e.g. by
-        :func:`standard_normals`, alongside other streams); overwritten with the result.
+        :func:`start_standard_normals`, while other work runs); overwritten with the result.
 
     Returns
     -------
