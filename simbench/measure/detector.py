@@ -478,21 +478,28 @@ def _readout_kernel(scan, lag, gain, offset, sigma, normals, full_scale, hot):  
         b = task // n_chunks
         start = (task % n_chunks) * 512
         stop = min(n, start + 512)
-        prev = np.empty(stop - start)
+        m = stop - start
+        prev = np.empty(m)
+        g = gain[start:stop]
+        h = hot[start:stop]
+        # (slices indexed from 0, so that the loop carries no negative-index checks)
         for v in range(n_views):
-            for j in range(start, stop):
-                x = scan[b, v, j]
-                if lag > 0.0 and v > 0:
-                    x = keep * x + lag * prev[j - start]
-                prev[j - start] = x
-                y = x * gain[j] + offset
+            row = scan[b, v, start:stop]
+            z = normals[b, v, start:stop] if noisy else row
+            use_lag = lag > 0.0 and v > 0
+            for i in range(m):
+                x = row[i]
+                if use_lag:
+                    x = keep * x + lag * prev[i]
+                prev[i] = x
+                y = x * g[i] + offset
                 if noisy:
-                    y += sigma * normals[b, v, j]
+                    y += sigma * z[i]
                 if y > full_scale:
                     y = full_scale
-                if hot[j]:
+                if h[i]:
                     y = full_scale
-                scan[b, v, j] = y
+                row[i] = y
 
 
 def apply_readout(scan: np.ndarray, *, lag: float, gain: np.ndarray, dark_level: float,
