@@ -361,3 +361,27 @@ def test_line_integrals_and_input_errors():
     d = np.array([[0.0, 0.0, 1.0]])
     with pytest.raises(InputError, match="infinite"):
         trace(prism, line_poses(o, d))
+
+
+@SETTINGS
+@given(seeds)
+def test_turn_about_the_axis_of_a_round_shape_changes_nothing(seed):
+    # A sphere, a circular cylinder and a cone are symmetric about their local z axis
+    # (closed form: the chord depends only on the distance to the axis and z), so a turn
+    # about z must leave every path length unchanged; the tracer drops such turns. An
+    # elliptic cylinder is not symmetric: its turned trace must differ (the turn is kept).
+    rng = np.random.default_rng(seed)
+    lines = random_lines(rng, np.zeros(3), 30.0)
+    poses = line_poses(*lines)
+    angle = rng.uniform(0.1, 2 * np.pi - 0.1)
+    for kind, half, extra in (("ellipsoid", (12.0, 12.0, 12.0), {}),
+                              ("cylinder", (10.0, 10.0, 25.0), {}),
+                              ("cone", (0.0, 0.0, 20.0), {"radii": (4.0, 14.0)})):
+        still = phantom_of([obj(kind, centre=(1.0, -2.0, 3.0), half_sizes=half, **extra)])
+        turned = phantom_of([obj(kind, centre=(1.0, -2.0, 3.0), half_sizes=half,
+                                 rotation=rot_z(angle), **extra)])
+        np.testing.assert_allclose(trace(turned, poses), trace(still, poses), atol=1e-10)
+    flat = phantom_of([obj("cylinder", half_sizes=(20.0, 5.0, 25.0))])
+    flat_turned = phantom_of([obj("cylinder", half_sizes=(20.0, 5.0, 25.0),
+                                  rotation=rot_z(np.pi / 2))])
+    assert not np.allclose(trace(flat, poses), trace(flat_turned, poses))

@@ -274,12 +274,21 @@ def trace_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, u, cand, n_cand, win,
         ex = ox - centre[k, 0]
         ey = oy - centre[k, 1]
         ez = oz - centre[k, 2]
-        lx = rotation[k, 0, 0] * ex + rotation[k, 0, 1] * ey + rotation[k, 0, 2] * ez
-        ly = rotation[k, 1, 0] * ex + rotation[k, 1, 1] * ey + rotation[k, 1, 2] * ez
-        lz = rotation[k, 2, 0] * ex + rotation[k, 2, 1] * ey + rotation[k, 2, 2] * ez
-        ldx = rotation[k, 0, 0] * dx + rotation[k, 0, 1] * dy + rotation[k, 0, 2] * dz
-        ldy = rotation[k, 1, 0] * dx + rotation[k, 1, 1] * dy + rotation[k, 1, 2] * dz
-        ldz = rotation[k, 2, 0] * dx + rotation[k, 2, 1] * dy + rotation[k, 2, 2] * dz
+        if rotation[k, 0, 0] == 1.0 and rotation[k, 1, 1] == 1.0 and rotation[k, 2, 2] == 1.0:
+            # the identity (a rotation with a unit diagonal is the identity): skip the turn
+            lx = ex
+            ly = ey
+            lz = ez
+            ldx = dx
+            ldy = dy
+            ldz = dz
+        else:
+            lx = rotation[k, 0, 0] * ex + rotation[k, 0, 1] * ey + rotation[k, 0, 2] * ez
+            ly = rotation[k, 1, 0] * ex + rotation[k, 1, 1] * ey + rotation[k, 1, 2] * ez
+            lz = rotation[k, 2, 0] * ex + rotation[k, 2, 1] * ey + rotation[k, 2, 2] * ez
+            ldx = rotation[k, 0, 0] * dx + rotation[k, 0, 1] * dy + rotation[k, 0, 2] * dz
+            ldy = rotation[k, 1, 0] * dx + rotation[k, 1, 1] * dy + rotation[k, 1, 2] * dz
+            ldz = rotation[k, 2, 0] * dx + rotation[k, 2, 1] * dy + rotation[k, 2, 2] * dz
         # move the origin to the point of the ray nearest the centre (well-conditioned roots)
         tc = -(lx * ldx + ly * ldy + lz * ldz)
         lx += tc * ldx
@@ -402,9 +411,9 @@ def trace_objects_chunk(parallel, curved, source, direction, detector_centre, u_
                             parallel, curved, source, direction, detector_centre, u_axis,
                             v_axis, view, u, v_row + cell_dv[s], spot_u[f], spot_v[f])
                         trace_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, u, cand, n_cand, win,
-                                  shape, centre, rotation, half_sizes, inv_half, params, mode,
-                                  material, poly_start, poly_count, poly_xy, t0buf, t1buf, kbuf,
-                                  cs, ce, crossings, acc)
+                                  shape, centre, rotation, half_sizes, inv_half, params,
+                                  mode, material, poly_start, poly_count, poly_xy, t0buf, t1buf,
+                                  kbuf, cs, ce, crossings, acc)
                     col = f * n_cell + s
                     for m in range(n_mat):
                         if not math.isfinite(acc[m]):

@@ -15,7 +15,8 @@ import numpy as np
 from simbench.errors import InputError, Where
 from simbench.geometry.poses import Poses
 from simbench.phantom.compiled import (
-    CONE, POLYGON_2D, PRISM_CODES, REPLACE, ADD, Phantom, VoxelVolume,
+    ADD, CONE, CYLINDER, ELLIPSE_2D, ELLIPSOID, POLYGON_2D, PRISM_CODES, REPLACE, Phantom,
+    VoxelVolume,
 )
 from simbench.trace.analytic import culling_windows, trace_objects_chunk
 from simbench.trace.siddon import trace_voxels_chunk
@@ -27,6 +28,25 @@ CHUNK_BYTES = 256 * 2**20
 def _n_blocks() -> int:
     """Work blocks per kernel call: several per thread, so uneven rows balance out."""
     return 32 * numba.get_num_threads()
+
+
+def _simplified_rotations(obj) -> np.ndarray:
+    """World-to-local rotations with the needless turns dropped.
+
+    A shape symmetric about its local z axis (sphere, circular cylinder, cone, circle) is
+    unchanged by a turn about that axis, so when its axis is the world z axis (or, for a
+    sphere, always) its rotation becomes the identity, which the kernel skips.
+    """
+    rotation = np.array(obj.rotation, dtype=np.float64)
+    half = np.asarray(obj.half_sizes, dtype=np.float64)
+    round_z = half[:, 0] == half[:, 1]
+    about_z = ((obj.shape == CONE)
+               | (round_z & np.isin(obj.shape, (ELLIPSOID, CYLINDER, ELLIPSE_2D))))
+    axis_is_z = np.all(rotation[:, 2, :] == (0.0, 0.0, 1.0), axis=1)
+    sphere = (obj.shape == ELLIPSOID) & round_z & (half[:, 1] == half[:, 2])
+    aligned = (np.all(rotation == np.eye(3), axis=(1, 2)) | (about_z & axis_is_z) | sphere)
+    rotation[aligned] = np.eye(3)
+    return np.ascontiguousarray(rotation)
 
 
 def _where(field: str) -> Where:
@@ -148,10 +168,11 @@ class _Plan:
             n_poly_iv = np.where(obj.shape == POLYGON_2D, obj.poly_count // 2 + 1, 1)
             self.max_intervals = int(max(1, n_poly_iv.sum()))
             self.max_poly = int(obj.poly_count.max()) if obj.count else 0
+            rotation = _simplified_rotations(obj)
             self.obj_arrays = (
                 np.ascontiguousarray(obj.shape, dtype=np.int64),
                 np.ascontiguousarray(obj.centre, dtype=np.float64),
-                np.ascontiguousarray(obj.rotation, dtype=np.float64),
+                rotation,
                 np.ascontiguousarray(obj.half_sizes, dtype=np.float64),
                 np.ascontiguousarray(1.0 / np.asarray(obj.half_sizes, dtype=np.float64)),
                 np.ascontiguousarray(obj.params, dtype=np.float64),
