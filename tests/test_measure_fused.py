@@ -1,0 +1,70 @@
+"""The fused passes of the measurement chain equal the plain steps they replace.
+
+References: scipy.ndimage (Gaussian filter, convolution), numpy's Generator (normal
+deviates), and the step-by-step formulas of the detector chain written out with numpy.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import ndimage
+
+from simbench.measure.config import DetectorConfig
+from simbench.measure.detector import FWHM_PER_SIGMA, apply_lag, apply_psf, apply_readout
+from simbench.measure.forward import expected_signal
+from simbench.measure.noise import start_standard_normals
+
+
+@pytest.mark.parametrize("fwhm,crosstalk", [(0.0, 0.03), (1.2, 0.0), (2.5, 0.02)])
+def test_row_blur_equals_scipy(fwhm, crosstalk):
+    rng = np.random.default_rng(3)
+    values = rng.uniform(100, 1000, (5, 7, 40))
+    det = DetectorConfig(blur_fwhm_mm=(fwhm, 0.0), crosstalk=crosstalk)
+    got = apply_psf(values, det, (0.8, 1.0), (-1,))
+    # scipy.ndimage is the reference: Gaussian of sigma = FWHM / 2.3548 / pitch cells,
+    # then the cross-talk kernel [c, 1 - 2c, c], edges repeated ("nearest")
+    want = values
+    if fwhm > 0:
+        want = ndimage.gaussian_filter1d(want, fwhm / FWHM_PER_SIGMA / 0.8, axis=-1,
+                                         mode="nearest", truncate=4.0)
+    if crosstalk > 0:
+        want = ndimage.convolve1d(want, np.array([crosstalk, 1 - 2 * crosstalk, crosstalk]),
+                                  axis=-1, mode="nearest")
+    np.testing.assert_allclose(got, want, rtol=1e-13)
+
+
+def test_readout_pass_equals_the_separate_steps():
+    rng = np.random.default_rng(4)
+    scan = rng.uniform(10, 5000, (1, 30, 24))
+    gain = rng.uniform(0.9, 1.1, 24)
+    gain[5] = 0.0  # a dead cell
+    hot = np.zeros(24, bool)
+    hot[7] = True
+    normals = rng.standard_normal(scan.shape)
+    # step by step, as the detector chain documents it: lag, gain, dark, noise, saturation
+    want = apply_lag(scan.copy(), 0.05, view_axis=1)
+    want = np.minimum(want * gain + 50.0 + 3.0 * normals, 4000.0)
+    want[..., hot] = 4000.0
+    got = apply_readout(np.ascontiguousarray(scan), lag=0.05, gain=gain, dark_level=50.0,
+                        electronic_noise=3.0, normals=normals, full_scale=4000.0, hot=hot)
+    np.testing.assert_allclose(got, want, rtol=1e-14, atol=1e-12)
+
+
+def test_background_normals_equal_direct_draws():
+    a1, a2 = np.random.default_rng(11), np.random.default_rng(12)
+    b1, b2 = np.random.default_rng(11), np.random.default_rng(12)
+    wait = start_standard_normals((a1, (1000,)), (a2, (3, 50)))
+    got = wait()
+    assert np.array_equal(got[0], b1.standard_normal(1000))
+    assert np.array_equal(got[1], b2.standard_normal((3, 50)))
+
+
+def test_forward_pass_refuses_nan_and_inf():
+    mu = np.array([[0.02, 0.03]])
+    w = np.array([[1.0, 2.0]])
+    for bad in (np.nan, np.inf):
+        lengths = np.full((1, 3, 4), 5.0)
+        lengths[0, 1, 2] = bad
+        with pytest.raises(ValueError, match="NaN or inf"):
+            expected_signal(lengths, mu, w)
