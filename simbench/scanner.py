@@ -55,13 +55,11 @@ class Scanner:
             raise InputError(Where(str(self.source), field="source"),
                              "the scanner file has no source section",
                              "add a source section (energy, kvp or spectrum_file)")
+        from simbench.measure import source_spectrum
+
         src = self.physics.source
-        if src.kind == "monochromatic":
-            return spectra.monochromatic(src.energy_kev)
-        if src.kind == "tube":
-            return spectra.tube_spectrum(src.kvp, anode_angle_deg=src.anode_angle_deg,
-                                         filtration=tuple(src.filtration),
-                                         bin_kev=src.energy_bin_kev)
+        if src.kind != "file":
+            return source_spectrum(src)
         spectrum = spectra.load_spectrum(self.spectrum_file_path())
         for material, thickness_mm in src.filtration:
             spectrum = spectra.filtered(spectrum, material, thickness_mm)

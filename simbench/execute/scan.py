@@ -102,18 +102,10 @@ def run_scan(phantom, scanner, out: Path, *, seed: int = 0, noise: bool = True,
     trace_seconds = time.perf_counter() - started
     warn_if_truncated(lengths, scanner.source, sub_rays=subrays)
 
-    user_spectrum = None
-    if src.kind == "file":
-        from simbench.materials.spectrum_file import load_spectrum
-        from simbench.measure import SpectrumArrays
-
-        loaded = load_spectrum(scanner.spectrum_file_path())
-        user_spectrum = SpectrumArrays(loaded.energies_kev, loaded.fluence)
-
     rng = rng_for(seed, *scan_identity(phantom, scanner, realization))
     started = time.perf_counter()
     result = measure(lengths, phantom.materials, physics, poses=poses, subrays=subrays,
-                     spectrum=user_spectrum, rng=rng, noise=noise)
+                     spectrum=scanner.spectrum(), rng=rng, noise=noise)
     measure_seconds = time.perf_counter() - started
 
     if reference_energy_kev is None:

@@ -100,58 +100,43 @@ class Measurement:
     metadata: dict = field(default_factory=dict)
 
 
-def source_spectrum(source: SourceConfig, user_spectrum: SpectrumArrays | None = None,
-                    *, need_absolute: bool = False) -> SpectrumArrays:
-    """The spectrum of a source configuration.
+def source_spectrum(source: SourceConfig, spectrum=None, *, need_absolute: bool = False):
+    """The spectrum a scan uses.
 
     Parameters
     ----------
     source : SourceConfig
-    user_spectrum : SpectrumArrays or simbench.materials.spectra.Spectrum, optional
-        The content of a ``spectrum_file`` source (read by the caller with
-        :func:`simbench.materials.spectrum_file.load_spectrum`); its filtration is applied
-        here. Anything with ``energies_kev`` and ``fluence`` arrays will do; an ``absolute``
-        attribute that is False refuses mAs exposures.
+    spectrum : simbench.materials.spectra.Spectrum or SpectrumArrays, optional
+        A spectrum given by the caller, used as it is (filtration already applied; for a
+        ``spectrum_file`` source, :meth:`simbench.scanner.Scanner.spectrum` reads the file
+        and applies the filtration). Anything with ``energies_kev`` and ``fluence`` arrays
+        will do; an ``absolute`` attribute that is False refuses mAs exposures.
     need_absolute : bool
         Whether the fluence must be absolute (mAs exposures).
 
     Returns
     -------
-    SpectrumArrays
+    Spectrum or SpectrumArrays
+        ``spectrum`` itself, or the source's monochromatic line or tube spectrum.
     """
-    if need_absolute and not getattr(user_spectrum, "absolute", True):
-        raise InputError(Where("scanner", field="exposure"),
-                         "an mAs exposure needs a spectrum in photons per mm^2 per mAs at 1 m, "
-                         "but the given spectrum is relative", "give 'air_counts'")
-    if source.kind == "file":
-        if user_spectrum is None:
-            raise ValueError("a spectrum-file source needs the file's spectrum (user_spectrum)")
-        energies = np.asarray(user_spectrum.energies_kev, dtype=np.float64)
-        fluence = np.asarray(user_spectrum.fluence, dtype=np.float64).copy()
-        if source.filtration:
-            from simbench.materials import get_material, mu_table
-
-            specs = [get_material(name) for name, _ in source.filtration]
-            thick = np.array([t for _, t in source.filtration])
-            fluence *= np.exp(-(thick @ mu_table(specs, energies)))
-        return SpectrumArrays(energies, fluence)
-    if user_spectrum is not None:
-        return SpectrumArrays(np.asarray(user_spectrum.energies_kev, dtype=np.float64),
-                              np.asarray(user_spectrum.fluence, dtype=np.float64))
-    if source.kind == "monochromatic":
-        if need_absolute:
-            raise InputError(Where("scanner", field="exposure"),
-                             "a monochromatic source has no tube output per mAs",
-                             "give 'air_counts' for a monochromatic source")
-        return SpectrumArrays(np.array([source.energy_kev]), np.array([1.0]))
-    else:
+    if spectrum is None:
+        if source.kind == "file":
+            raise ValueError("a spectrum-file source needs its spectrum (Scanner.spectrum())")
         from simbench.materials import spectra
 
-        spec = spectra.tube_spectrum(source.kvp, anode_angle_deg=source.anode_angle_deg,
-                                     filtration=tuple(source.filtration),
-                                     bin_kev=source.energy_bin_kev)
-    return SpectrumArrays(np.asarray(spec.energies_kev, dtype=np.float64),
-                          np.asarray(spec.fluence, dtype=np.float64))
+        if source.kind == "monochromatic":
+            spectrum = spectra.monochromatic(source.energy_kev)
+        else:
+            spectrum = spectra.tube_spectrum(source.kvp, anode_angle_deg=source.anode_angle_deg,
+                                             filtration=tuple(source.filtration),
+                                             bin_kev=source.energy_bin_kev)
+    if need_absolute and not getattr(spectrum, "absolute", True):
+        what = ("a monochromatic source has no tube output per mAs"
+                if source.kind == "monochromatic" else
+                "an mAs exposure needs a spectrum in photons per mm^2 per mAs at 1 m, but the "
+                "given spectrum is relative")
+        raise InputError(Where("scanner", field="exposure"), what, "give 'air_counts'")
+    return spectrum
 
 
 def _geometry(path_lengths, poses, pitch_mm, sdd_mm, subrays):
@@ -202,9 +187,10 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
         Source-detector distance for mAs exposures without poses.
     subrays : bool
         Without poses: whether ``path_lengths`` has a trailing sub-ray axis.
-    spectrum : SpectrumArrays, optional
-        The spectrum to use (required for ``spectrum_file`` sources; otherwise it is made
-        from ``physics.source``).
+    spectrum : Spectrum or SpectrumArrays, optional
+        The spectrum to use, filtration applied (required for ``spectrum_file`` sources,
+        see :meth:`simbench.scanner.Scanner.spectrum`; otherwise made from
+        ``physics.source``).
     rng : numpy.random.Generator or int
         Random stream of this realization (see :func:`rng_for`), or a root seed.
     noise : bool
