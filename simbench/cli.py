@@ -173,6 +173,8 @@ def cmd_list(args: argparse.Namespace) -> int:
 def cmd_demo(args: argparse.Namespace) -> int:
     out = Path(args.output)
     print(simbench.CAUTION)
+    print("(The first run compiles the numba kernels, about a minute on 2 cores; they are "
+          "cached for later runs.)")
     steps = [
         ["draw", "water-ellipse-inserts", "-o", str(out / "water-ellipse-inserts.png")],
         ["draw", "cone-beam-3d", "-o", str(out / "cone-beam-3d.png")],
