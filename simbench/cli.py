@@ -156,8 +156,11 @@ def cmd_spectrum(args: argparse.Namespace) -> int:
     spectrum = scanner.spectrum()
     plot_spectrum(spectrum, out)
     print(f"wrote {out}")
-    print(f"mean energy {spectrum.mean_energy_kev:.1f} keV, first HVL {spectrum.hvl_mm_al:.2f} mm Al, "
-          f"effective energy {spectrum.effective_energy_kev:.1f} keV")
+    from simbench.materials.spectra import effective_energy_kev
+
+    print(f"mean energy {spectrum.mean_energy_kev:.1f} keV, first HVL {spectrum.hvl_mm_al:.2f} "
+          f"mm Al, effective energy {effective_energy_kev(spectrum, 'water'):.1f} keV in water "
+          f"({spectrum.effective_energy_kev:.1f} keV in aluminium)")
     return 0
 
 

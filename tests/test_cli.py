@@ -212,7 +212,7 @@ def test_spectrum_command_prints_beam_quality(tmp_path, capsys):
     assert main(["spectrum", "fan-clinical", "-o", str(out)]) == 0
     assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     text = capsys.readouterr().out
-    assert "mean energy" in text and "mm Al" in text
+    assert "mean energy" in text and "mm Al" in text and "in water" in text
 
 
 def test_spectrum_file_source_is_read_beside_the_scanner_and_filtered(disc_files, tmp_path,
