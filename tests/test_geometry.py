@@ -342,7 +342,7 @@ def test_helpers_for_sub_rays():
 
 @pytest.mark.parametrize("name,shape", [("parallel-bench-2d", (360, 512)),
                                         ("fan-clinical", (1000, 880)),
-                                        ("cone-flat-panel", (720, 384, 512))])
+                                        ("cone-flat-panel", (360, 240, 400))])
 def test_shipped_scanner_files(name, shape):
     from importlib.resources import files
 

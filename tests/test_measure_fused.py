@@ -68,3 +68,15 @@ def test_forward_pass_refuses_nan_and_inf():
         lengths[0, 1, 2] = bad
         with pytest.raises(ValueError, match="NaN or inf"):
             expected_signal(lengths, mu, w)
+
+
+def test_scatter_kernel_by_fft_equals_scipy_gaussian():
+    from simbench.measure.scatter import _kernel
+
+    values = np.random.default_rng(5).uniform(1.0, 2.0, (3, 4, 30, 70))
+    got = _kernel(values, 60.0, (0.8, 1.1), (-1, -2))
+    # reference: scipy.ndimage's Gaussian, edges repeated, truncated at 3 sigma
+    want = values
+    for sigma, axis in ((60.0 / FWHM_PER_SIGMA / 0.8, -1), (60.0 / FWHM_PER_SIGMA / 1.1, -2)):
+        want = ndimage.gaussian_filter1d(want, sigma, axis=axis, mode="nearest", truncate=3.0)
+    np.testing.assert_allclose(got, want, rtol=1e-12)
