@@ -88,18 +88,23 @@ def cmd_trace(args: argparse.Namespace) -> int:
     from simbench.atomic import write_json, write_npy
     from simbench.materials import mu_table
     from simbench.execute.scan import warn_if_truncated
-    from simbench.trace import line_integrals, trace
+    from simbench.trace import iter_trace, line_integrals
 
     out = _check_output(args.output, ".npy")
     energy = _energy_option(args.energy)
     phantom, scanner = _load(args.phantom, args.scanner)
     poses = scanner.geometry.poses()
-    started = time.perf_counter()
-    path_lengths = trace(phantom, poses)
-    seconds = time.perf_counter() - started
-    warn_if_truncated(path_lengths, scanner.source)
     mu = mu_table(phantom.materials, [energy])[:, 0]
-    sinogram = line_integrals(path_lengths, mu)
+    started = time.perf_counter()
+    # chunk by chunk of views: only the line integrals are kept, so large cone-beam runs
+    # need the memory of the output, not of every material's path lengths
+    sinogram = np.empty(poses.projection_shape)
+    edges = np.zeros((len(phantom.materials), poses.n_views, 2))
+    for views, lengths in iter_trace(phantom, poses):
+        sinogram[views] = line_integrals(lengths, mu)
+        edges[:, views] = lengths[..., [0, -1]].reshape(len(mu), len(views), -1, 2).max(axis=2)
+    seconds = time.perf_counter() - started
+    warn_if_truncated(edges, scanner.source)
     write_npy(out, np.ascontiguousarray(sinogram, dtype=np.float64))
     sidecar = out.with_suffix(".json")
     write_json(sidecar, {

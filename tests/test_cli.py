@@ -238,3 +238,18 @@ def test_spectrum_file_source_is_read_beside_the_scanner_and_filtered(disc_files
     want = (1.0 + 0.01 * energies) * np.exp(-2.0 * mu_table([get_material("aluminium")],
                                                             energies)[0])
     np.testing.assert_allclose(detected / detected.sum(), want / want.sum(), rtol=1e-9)
+
+
+def test_scan_too_large_for_memory_is_refused(disc_files, tmp_path, capsys, monkeypatch):
+    # A scan whose estimated memory exceeds what the machine has ends with one line and
+    # exit code 2 rather than being killed half way (the machine is made to look small).
+    import simbench.execute.scan as scan_module
+
+    monkeypatch.setattr(scan_module, "available_memory_bytes", lambda: 100_000)
+    phantom, _ = disc_files
+    scanner = tmp_path / "mono.yaml"
+    scanner.write_text(MONO_SCANNER)
+    assert _scan(phantom, scanner, tmp_path / "out") == 2
+    line = _error_line(capsys)
+    assert "GiB" in line and "fewer views" in line
+    assert not (tmp_path / "out" / "scan.json").exists()
