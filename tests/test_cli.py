@@ -59,7 +59,8 @@ def test_trace_writes_exact_disc_sinogram_and_sidecar(disc_files, tmp_path, caps
     sino = np.load(out)
     assert sino.dtype == np.float64 and sino.shape == (12, 101)
     # Closed form: the parallel projection of a disc of radius R centred at c is
-    # 2 mu sqrt(R^2 - (t - c.u(phi))^2) (chord length of a circle)
+    # 2 mu sqrt(R^2 - (t - c.u(phi))^2) (chord length of a circle); tolerance: float64
+    # rounding of an exact tracer (common practice)
     sidecar = json.loads(out.with_suffix(".json").read_text())
     phi = np.asarray(sidecar["geometry"]["angles_rad"])
     t = np.asarray(sidecar["geometry"]["col_u_mm"])
@@ -128,6 +129,8 @@ def test_truncating_detector_warns(tmp_path, capsys):
     assert main(["trace", str(phantom), str(scanner), "--energy", "60",
                  "-o", str(tmp_path / "x.npy")]) == 0
     err = capsys.readouterr().err
+    # closed form: a 200 mm radius disc overfills the 101 x 1 mm detector (half width
+    # 50.5 mm) in every view, so every view is truncated
     assert "warning" in err and "100.0 % of views" in err
 
 
@@ -197,6 +200,8 @@ def test_scan_bad_kvp_is_one_line_exit_2(disc_files, tmp_path, capsys):
     scanner.write_text(PARALLEL_SCANNER + "source:\n  kvp: 20\nexposure:\n  air_counts: 1.0e4\n")
     assert _scan(phantom, scanner, tmp_path / "out") == 2
     line = _error_line(capsys)
+    # kVp 20 is below the tube model's 40 to 150 kV (tests/test_spectra.py); line 10,
+    # column 8 is the value "20" in the text written above (counted by hand)
     assert "tube.yaml:10:8" in line and "kvp" in line
     assert not (tmp_path / "out" / "scan.json").exists()
 
@@ -237,6 +242,7 @@ def test_spectrum_file_source_is_read_beside_the_scanner_and_filtered(disc_files
 
     want = (1.0 + 0.01 * energies) * np.exp(-2.0 * mu_table([get_material("aluminium")],
                                                             energies)[0])
+    # rtol: float64 rounding of the same products (common practice)
     np.testing.assert_allclose(detected / detected.sum(), want / want.sum(), rtol=1e-9)
 
 
@@ -274,5 +280,8 @@ def test_voxel_phantom_traces_like_the_analytic_square(tmp_path):
         assert main(["trace", str(tmp_path / f"{name}.yaml"), str(scanner), "--energy", "70",
                      "-o", str(tmp_path / f"{name}.npy")]) == 0
     voxel, analytic = np.load(tmp_path / "voxels.npy"), np.load(tmp_path / "square.npy")
+    # not vacuous: a 40 mm water chord at 70 keV is about 40 x 0.0193 /mm = 0.77 (water
+    # 0.193 cm^2/g at 70 keV, xraylib CS_Total_CP)
     assert analytic.max() > 0.5
+    # tolerance: float64 rounding of exact path lengths summed voxel by voxel (common practice)
     np.testing.assert_allclose(voxel, analytic, rtol=1e-9, atol=1e-12)

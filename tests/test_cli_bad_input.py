@@ -35,6 +35,8 @@ exposure:
 """
 
 # (case, file to corrupt, text, expected line number, expected field fragment)
+# Expected line numbers are those of the texts written here, counted by hand (1-based); a
+# YAML syntax error in a flow mapping left open is reported at the end of the text (line 5).
 PHANTOM_CASES = [
     ("yaml syntax", "name: case\ndimension: 2\nobjects:\n  - {shape: circle, radius: 3\n", 5, None),
     ("unknown shape", PHANTOM.replace("circle", "hexagon"), 4, "shape"),
@@ -49,6 +51,9 @@ PHANTOM_CASES = [
     ("inf", PHANTOM.replace("radius: 40", "radius: .inf"), 4, "radius"),
 ]
 
+# Out-of-range values against the project's stated limits: tube model 40 to 150 kV,
+# attenuation tables 1 to 800 keV (simbench.materials.VALID_ENERGY_RANGE_KEV), at most
+# MAX_THRESHOLDS = 8 photon-counting thresholds.
 SCANNER_CASES = [
     ("SDD <= SID", SCANNER.replace("type: parallel\n  dimension: 2",
                                    "type: fan\n  sid: 500 mm\n  sdd: 500 mm"), 5, "sdd"),

@@ -104,6 +104,7 @@ def test_curved_cells_lie_on_the_circle_about_the_source_and_are_equiangular():
     # angle between neighbouring rays = arc-length pitch / SDD (equiangular detector)
     d = rays[:, 1, :, 3:6]
     step = np.arccos(np.clip(np.einsum("vjk,vjk->vj", d[:, 1:], d[:, :-1]), -1, 1))
+    # rtol: arccos of a dot product near 1 loses digits (common practice)
     np.testing.assert_allclose(step, pitch / SDD, rtol=1e-6)
     # the fan angle turns toward +u: the last column leans to +u
     assert np.all(np.einsum("vk,vk->v", d[:, -1], p.u_axis) > 0)
@@ -165,6 +166,7 @@ def test_offset_detector_shifts_cells_and_half_fan_field_of_view():
                                np.broadcast_to(p.col_u_mm, (12, n)), atol=1e-9)
     near, far = 20.0, 180.0
     # every view sees the circle up to the near edge, a full turn up to the far edge
+    # (closed form: SID sin(atan(edge / SDD)))
     assert field_of_view_radius_mm(p) == pytest.approx(SID * math.sin(math.atan(near / SDD)))
     assert field_of_view_radius_mm(p, every_view=False) == \
         pytest.approx(SID * math.sin(math.atan(far / SDD)))
@@ -187,9 +189,9 @@ def test_row_offset_and_quarter_cell_offset_from_file():
   views: 3
 """)
     p = g.poses()
-    assert g.sdd_mm == 900.0
+    assert g.sdd_mm == 900.0  # 90 cm (unit definition)
     np.testing.assert_allclose(p.col_u_mm, [-0.625, -0.125, 0.375, 0.875])  # u_j + pitch / 4
-    np.testing.assert_allclose(p.row_v_mm, [1.5, 2.5])
+    np.testing.assert_allclose(p.row_v_mm, [1.5, 2.5])  # (i - 1/2) x 1 mm + 2 mm (closed form)
 
 
 def test_helical_z_shift_per_view():
@@ -214,7 +216,7 @@ def test_helical_z_shift_per_view():
 """)
     q = g.poses()
     np.testing.assert_allclose(q.source[:, 2], feed * np.arange(8) / 4)
-    assert np.all(np.diff(q.angles_rad) < 0)
+    assert np.all(np.diff(q.angles_rad) < 0)  # clockwise: phi decreases (ARCHITECTURE.md)
 
 
 # --------------------------------------------------------------------------------------------
@@ -319,9 +321,10 @@ def test_inline_poses_parallel_and_axis_normalisation():
 """)
     p = g.poses()
     assert p.parallel and p.projection_shape == (2, 2, 3)
+    # axes given to 4 digits are made exactly unit and orthogonal (to float64 rounding)
     np.testing.assert_allclose(np.linalg.norm(p.u_axis, axis=1), 1.0, rtol=1e-15)
     np.testing.assert_allclose(np.einsum("ij,ij->i", p.u_axis, p.v_axis), 0.0, atol=1e-15)
-    assert p.detector_centre[1, 2] == 10.0
+    assert p.detector_centre[1, 2] == 10.0  # 1 cm (unit definition)
 
 
 def test_helpers_for_sub_rays():
@@ -329,6 +332,7 @@ def test_helpers_for_sub_rays():
     # midpoint rule: offsets ((i + 1/2) / n - 1/2) * pitch, u fastest
     np.testing.assert_allclose(s[:, 0], np.tile([-0.3, 0.0, 0.3], 2), atol=1e-15)
     np.testing.assert_allclose(s[:, 1], np.repeat([-0.5, 0.5], 3), atol=1e-15)
+    # same midpoint rule over a 1.2 mm spot in 4 samples: +-0.15, +-0.45 mm
     f = focal_spot_points(0.0, 1.2, 1, 4)
     np.testing.assert_allclose(f, np.c_[np.zeros(4), [-0.45, -0.15, 0.15, 0.45]], atol=1e-15)
     with pytest.raises(InputError):
@@ -349,6 +353,7 @@ def test_shipped_scanner_files(name, shape):
     from simbench.scanner import load_scanner
 
     scanner = load_scanner(files("simbench") / "data" / "scanners" / f"{name}.yaml")
+    # shapes (views, [rows,] columns) as written in the shipped scanner files
     assert scanner.geometry.poses().projection_shape == shape
     assert scanner.physics is not None
 
@@ -373,6 +378,7 @@ def _with(text: str, key: str, value: str) -> str:
     return text + f"  {key}: {value}\n"
 
 
+# (label, text, expected line counted by hand in the text, field, words of the problem)
 BAD = [
     ("sdd <= sid", _with(FAN, "sdd", "400"), 4, "geometry.sdd", "greater than SID"),
     ("sdd == sid", _with(FAN, "sdd", "500"), 4, "geometry.sdd", "greater than SID"),
@@ -500,8 +506,9 @@ def test_documentation_example_parses():
     text = (Path(__file__).parent.parent / "docs" / "geometry.md").read_text()
     block = re.findall(r"```yaml\n(.*?)```", text, re.S)[0]
     p = geometry_from_text(block).poses()
-    assert p.projection_shape == (2, 192, 256)
-    # the second view is phi = 10 deg: direction d = (-sin 10, cos 10, 0) (ARCHITECTURE.md)
+    assert p.projection_shape == (2, 192, 256)  # as written in docs/geometry.md
+    # the second view is phi = 10 deg: direction d = (-sin 10, cos 10, 0) (ARCHITECTURE.md);
+    # atol 1e-4 is looser than float64 needs (common practice)
     np.testing.assert_allclose(p.direction[1], [-math.sin(math.radians(10)),
                                                 math.cos(math.radians(10)), 0], atol=1e-4)
 
@@ -528,6 +535,7 @@ def test_resolved_settings_read_back_to_the_same_rays(text):
 
     g = geometry_from_text(text)
     again = geometry_from_text(yaml.safe_dump({"geometry": g.resolved()}, sort_keys=False))
+    # resolved settings are written as decimals: rays agree to rounding (common practice)
     np.testing.assert_allclose(cell_rays(again.poses()), cell_rays(g.poses()), rtol=1e-12,
                                atol=1e-9)
 
@@ -541,6 +549,7 @@ def test_views_are_rotations_of_view_zero_about_z(phi, curved, offset, sid, extr
     rays = cell_rays(p)
     c, s = math.cos(phi), math.sin(phi)
     rotation = np.array([[c, -s, 0], [s, c, 0], [0, 0, 1]])  # rotation by phi about +z
+    # tolerances: float64 rounding at positions of up to ~1600 mm (common practice)
     np.testing.assert_allclose(rays[0, ..., 0:3] @ rotation.T, rays[1, ..., 0:3], atol=1e-9)
     np.testing.assert_allclose(rays[0, ..., 3:6] @ rotation.T, rays[1, ..., 3:6], atol=1e-12)
     np.testing.assert_allclose(rays[0, ..., 7], rays[1, ..., 7], rtol=1e-12)

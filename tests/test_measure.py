@@ -46,6 +46,7 @@ def test_noise_free_monochromatic_log_is_the_line_integral():
     phys = Physics(MONO60, ExposureConfig(air_counts=1.0e6))
     m = measure(lengths, mats, phys, noise=False, dtype=np.float64)
     truth = np.einsum("m,mvc->vc", mu_table(mats, [60.0])[:, 0], lengths)
+    # tolerances: float64 rounding of exp and log (common practice)
     assert np.allclose(np.log(m.flat / m.counts), truth, rtol=1e-12, atol=1e-14)
     assert np.allclose(m.projections, truth, rtol=1e-12, atol=1e-14)
     assert np.allclose(m.counts, 1.0e6 * np.exp(-truth), rtol=1e-12)
@@ -69,6 +70,7 @@ def test_mas_exposure_follows_tube_output_model():
     phys = Physics(SourceConfig("file"), ExposureConfig(mas_per_view=0.5))
     m = measure(np.zeros((1, 2, 4)), np.zeros((1, 2)), phys, spectrum=SpectrumArrays(energies, fluence),
                 pitch_mm=(1.0, 1.5), sdd_mm=1250.0, noise=False, dtype=np.float64)
+    # inverse-square law from 1 m to SDD 1250 mm, cell area 1.0 x 1.5 mm^2, 0.5 mAs (closed form)
     expected = fluence.sum() * (1000.0 / 1250.0) ** 2 * 1.5 * 0.5
     assert np.allclose(m.flat, expected, rtol=1e-13)
 
@@ -107,6 +109,7 @@ def test_polychromatic_water_projection_is_concave_in_thickness():
     mono = measure(lengths, water, Physics(MONO60, ExposureConfig(air_counts=1e6)),
                    noise=False, dtype=np.float64).projections[0]
     mu60 = mu_table(water, [60.0])[0, 0]
+    # tolerances: float64 rounding (common practice)
     assert np.allclose(mono, mu60 * thickness, rtol=1e-12, atol=1e-14)
     assert np.allclose(np.diff(mono, 2), 0.0, atol=1e-12)
 
@@ -163,6 +166,8 @@ def test_uncorrected_gain_gives_rings_and_flat_field_removes_the_fixed_pattern()
     drift = Physics(MONO60, ExposureConfig(air_counts=1e5),
                     DetectorConfig(gain_spread=0.05, gain_drift=0.01))
     ringed = measure(lengths, mu, drift, noise=False, dtype=np.float64).projections
+    # a factor of 100 over the clean image's discretisation ripple: engineering judgement
+    # (common practice)
     assert _ring_power(ringed, angles) > 100.0 * _ring_power(clean, angles)
 
 
@@ -176,10 +181,10 @@ def test_dead_and_hot_cells():
                 noise=False, dtype=np.float64)
     assert np.all(m.projections[:, 7] == 0.0)
     assert np.all(m.projections[:, 2] == 0.0)   # ln(floor / floor)
-    assert m.metadata["starvation"]["starved_flat_cells"] == 1
-    assert m.metadata["starvation"]["starved_cells"] == 5
+    assert m.metadata["starvation"]["starved_flat_cells"] == 1  # the one dead cell
+    assert m.metadata["starvation"]["starved_cells"] == 5       # dead cell x 5 views
     ok = np.delete(m.projections, [2, 7], axis=1)
-    assert np.allclose(ok, 0.5, rtol=1e-12)
+    assert np.allclose(ok, 0.5, rtol=1e-12)  # mu L = 0.05 x 10 (Beer-Lambert)
 
 
 # --------------------------------------------------------------------------------------------
@@ -194,14 +199,15 @@ def test_photon_starvation_is_clamped_and_recorded():
     m = measure(lengths, np.array([[0.05]]), phys, rng=rng_for(1, "starve"), dtype=np.float64)
     assert np.all(np.isfinite(m.projections))
     rec = m.metadata["starvation"]
-    assert rec["floor_counts"] == 0.5
-    assert rec["starved_cells"] == 200
+    assert rec["floor_counts"] == 0.5  # the documented default floor (measure/calibration.py)
+    assert rec["starved_cells"] == 200  # 20 views x 10 blocked columns
     assert np.allclose(m.projections[:, 10:20], np.log(m.flat[10:20] / 0.5))
 
 
 def test_log_normalize_floor_policy():
     p, rec = log_normalize(np.array([[50.0, 9.0, 12.0]]), np.array([110.0, 110.0, 110.0]),
                            np.array([10.0, 10.0, 10.0]), floor=2.0)
+    # closed form: ln((flat - dark) / max(counts - dark, floor)) = ln(100 / 40), ln(100 / 2) twice
     assert p[0] == pytest.approx([np.log(100.0 / 40.0), np.log(100.0 / 2.0), np.log(100.0 / 2.0)])
     assert rec["starved_cells"] == 1 and rec["floor_counts"] == 2.0  # 12 - 10 = floor is kept
 
@@ -312,13 +318,13 @@ def test_good_source_and_exposure():
     assert src.anode_angle_deg == pytest.approx(10.0)
     assert src.focal_spot_mm == (1.2, 0.8) and src.focal_spot_samples == (3, 3)
     exp = parse_exposure(_section("tube_current_ma: 200\nview_time_ms: 0.5"))
-    assert exp.mas_per_view == pytest.approx(0.1)
+    assert exp.mas_per_view == pytest.approx(0.1)  # 200 mA x 0.5 ms = 0.1 mAs (unit definition)
 
 
 def test_error_names_line_and_column():
     with pytest.raises(InputError) as err:
         parse_exposure(_section("# exposure\nair_counts: -5\n"))
-    assert str(err.value).startswith("scanner.yaml:2:13: air_counts:")
+    assert str(err.value).startswith("scanner.yaml:2:13: air_counts:")  # the value's place, by hand
 
 
 @pytest.mark.parametrize("text, needle", [
@@ -351,6 +357,7 @@ def test_tube_source_through_the_spectrum_model():
     lengths = np.array([0.0, 100.0, 200.0, 300.0])[None, None, :]
     m = measure(lengths, [get_material("water")], phys, pitch_mm=(1.0, 1.0), sdd_mm=1000.0,
                 noise=False, dtype=np.float64)
+    # SDD 1000 mm (no inverse-square factor), 1 mm^2 cell, 100 mA x 1 ms = 0.1 mAs
     assert m.flat[0] == pytest.approx(spec.fluence.sum() * 1.0 * 1.0 * 0.1, rel=1e-12)
     slope = m.projections[0, 1:] / lengths[0, 0, 1:]
     assert np.all(np.diff(slope) < 0)
@@ -362,5 +369,6 @@ def test_kernel_exponential_matches_numpy():
 
     tau = np.concatenate([np.linspace(0.0, 700.0, 70001),
                           np.random.default_rng(0).uniform(0.0, 30.0, 10000)])
+    # a few hundred ulp: a vectorised exp is not correctly rounded (common practice)
     assert np.max(np.abs(exp_neg(tau) / np.exp(-tau) - 1.0)) < 3e-14
     assert exp_neg(np.array([0.0]))[0] == 1.0

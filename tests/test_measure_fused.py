@@ -31,7 +31,7 @@ def test_row_blur_equals_scipy(fwhm, crosstalk):
     if crosstalk > 0:
         want = ndimage.convolve1d(want, np.array([crosstalk, 1 - 2 * crosstalk, crosstalk]),
                                   axis=-1, mode="nearest")
-    np.testing.assert_allclose(got, want, rtol=1e-13)
+    np.testing.assert_allclose(got, want, rtol=1e-13)  # float64 rounding (common practice)
 
 
 def test_readout_pass_equals_the_separate_steps():
@@ -48,6 +48,7 @@ def test_readout_pass_equals_the_separate_steps():
     want[..., hot] = 4000.0
     got = apply_readout(np.ascontiguousarray(scan), lag=0.05, gain=gain, dark_level=50.0,
                         electronic_noise=3.0, normals=normals, full_scale=4000.0, hot=hot)
+    # same operations in another order: float64 rounding (common practice)
     np.testing.assert_allclose(got, want, rtol=1e-14, atol=1e-12)
 
 
@@ -79,4 +80,5 @@ def test_scatter_kernel_by_fft_equals_scipy_gaussian():
     want = values
     for sigma, axis in ((60.0 / FWHM_PER_SIGMA / 0.8, -1), (60.0 / FWHM_PER_SIGMA / 1.1, -2)):
         want = ndimage.gaussian_filter1d(want, sigma, axis=axis, mode="nearest", truncate=3.0)
+    # FFT against direct convolution: float64 rounding (common practice)
     np.testing.assert_allclose(got, want, rtol=1e-12)

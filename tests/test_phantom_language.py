@@ -38,6 +38,7 @@ def test_circle_compiles_to_ellipse_code_with_equal_half_sizes():
     o = p.objects
     assert o.shape[0] == C.ELLIPSE_2D
     np.testing.assert_array_equal(o.centre[0], [3, -4, 0])
+    # a circle is an ellipse with equal half sizes, unbounded along z (compiled.py contract)
     assert tuple(o.half_sizes[0]) == (12.0, 12.0, math.inf)
     np.testing.assert_array_equal(o.rotation[0], np.eye(3))
     assert o.bound_radius[0] == 12.0
@@ -59,14 +60,14 @@ def test_rectangle_size_is_full_width_and_file_units_apply():
     p = phantom_2d("  - {shape: rectangle, size: [4, 3], mu: 1 /m}\n", "units: cm\n")
     np.testing.assert_array_equal(p.objects.half_sizes[0][:2], [20.0, 15.0])  # 4 cm / 2
     assert p.objects.bound_radius[0] == pytest.approx(25.0)  # hypot(20, 15), 3-4-5 triangle
-    assert p.materials[0].mu_per_mm == pytest.approx(1e-3)
+    assert p.materials[0].mu_per_mm == pytest.approx(1e-3)  # 1 /m = 0.001 /mm (unit definition)
 
 
 def test_explicit_units_override_file_units():
     p = phantom_2d("  - {shape: circle, radius: 15 mm, centre: [1 cm, 2], mu: 1 /mm}\n",
                    "units: cm\n")
     assert p.objects.half_sizes[0][0] == 15.0
-    np.testing.assert_array_equal(p.objects.centre[0][:2], [10.0, 20.0])
+    np.testing.assert_array_equal(p.objects.centre[0][:2], [10.0, 20.0])  # 1 cm, 2 (file cm)
 
 
 def test_polygon_vertices_are_kept_in_local_coordinates():
@@ -76,7 +77,7 @@ def test_polygon_vertices_are_kept_in_local_coordinates():
     assert o.shape[0] == C.POLYGON_2D
     assert (o.poly_start[0], o.poly_count[0]) == (0, 6)
     np.testing.assert_array_equal(o.poly_xy, np.array(verts, float))
-    assert o.bound_radius[0] == pytest.approx(math.hypot(30, 10))
+    assert o.bound_radius[0] == pytest.approx(math.hypot(30, 10))  # farthest vertex (30, 10)
 
 
 # -- 3-D shapes --------------------------------------------------------------------------------
@@ -108,6 +109,7 @@ def test_cylinder_axis_maps_local_z_to_the_axis():
         "  - {shape: cylinder, semi_axes: [4, 2], height: 10, axis: [1, 1, 1], mu: 1 /mm}\n"
         "  - {shape: cylinder, radius: 4, height: 10, axis: [0, 0, -2], mu: 1 /mm}\n")
     o = p.objects
+    # half sizes: radius or semi-axes, and half the height (closed form)
     np.testing.assert_array_equal(o.half_sizes[0], [4, 4, 5])
     np.testing.assert_array_equal(o.half_sizes[1], [4, 2, 5])
     for k, axis in enumerate(([1, 0, 0], [1, 1, 1], [0, 0, -1])):
@@ -121,6 +123,7 @@ def test_cone_radii_and_height():
     p = phantom_3d("  - {shape: cone, base_radius: 6, top_radius: 2, height: 20, mu: 1 /mm}\n")
     o = p.objects
     assert o.shape[0] == C.CONE
+    # larger radius and half height; bound: corner of the base rim (closed form)
     np.testing.assert_array_equal(o.half_sizes[0], [6, 6, 10])
     np.testing.assert_array_equal(o.params[0], [6, 2, 0, 0])
     assert o.bound_radius[0] == pytest.approx(math.hypot(6, 10))
@@ -181,7 +184,7 @@ def test_bars_width_is_half_a_line_pair():
     # 2 lp/mm: a line pair is 0.5 mm, bar width = gap = 0.25 mm (definition of lp/mm)
     np.testing.assert_allclose(o.half_sizes[:, 0], 0.125)
     np.testing.assert_allclose(o.half_sizes[:, 1], 3.0)
-    np.testing.assert_allclose(o.centre[:, 0], [-0.75, -0.25, 0.25, 0.75])
+    np.testing.assert_allclose(o.centre[:, 0], [-0.75, -0.25, 0.25, 0.75])  # one pair apart
     assert set(o.shape) == {C.RECTANGLE_2D}
 
 
@@ -192,7 +195,7 @@ def test_nested_patterns_multiply():
         "      count: 3\n"
         "      object:\n"
         "        array: {count: 2, step: [4, 0], object: {name: d, shape: circle, radius: 1, mu: 1 /mm}}\n")
-    assert p.objects.count == 6
+    assert p.objects.count == 6  # 3 ring copies x 2 array copies
     assert p.object_names[:2] == ("d 1 1", "d 1 2")
 
 
@@ -215,8 +218,8 @@ def test_materials_catalogue_custom_and_unused():
 
 def test_shepp_logan_matches_the_published_table():
     p = load_phantom(shipped_phantom_path("shepp-logan"))
-    # Kak & Slaney, Principles of Computerized Tomographic Imaging, Table 3.1:
-    # (x, y, major, minor, angle deg, intensity); scaled here by 100 mm and 0.02 /mm
+    # Kak & Slaney, Principles of Computerized Tomographic Imaging, Table 3.1 (recalled from
+    # memory): (x, y, major, minor, angle deg, intensity); scaled here by 100 mm and 0.02 /mm
     table = [(0, 0, .92, .69, 90, 2.0), (0, -.0184, .874, .6624, 90, -.98),
              (.22, 0, .31, .11, 72, -.02), (-.22, 0, .41, .16, 108, -.02),
              (0, .35, .25, .21, 90, .01), (0, .1, .046, .046, 0, .01),
@@ -263,6 +266,7 @@ def test_voxel_label_phantom(tmp_path):
                     "materials:\n  bone-like: {formula: CaO, density: 1.8}\n")
     p = load_phantom(path)
     v = p.voxels
+    # the label array and placement as written, widened to int32 (compiled.py contract)
     assert v.kind == "labels" and v.values.shape == (1, 4, 6) and v.values.dtype == np.int32
     assert v.spacing_mm[:2] == (0.5, 0.5) and v.centre_mm == (1.0, 2.0, 0.0)
     assert [p.materials[i].name for i in v.label_material[1:]] == ["water", "bone-like"]
@@ -277,6 +281,7 @@ def test_voxel_mu_phantom_converts_units(tmp_path):
     path.write_text("name: v\ndimension: 3\nvoxels: {file: mu.npy, voxel_size: [1, 1, 2],"
                     " mu_unit: /cm}\n")
     p = load_phantom(path)
-    np.testing.assert_allclose(p.voxels.values, 0.02, rtol=1e-6)  # 0.2 /cm = 0.02 /mm
+    # 0.2 /cm = 0.02 /mm (unit definition); rtol: float32 input (common practice)
+    np.testing.assert_allclose(p.voxels.values, 0.02, rtol=1e-6)
     assert p.voxels.spacing_mm == (1.0, 1.0, 2.0)
     assert p.materials[0].kind == "mu" and p.materials[0].mu_per_mm == 1.0

@@ -30,7 +30,8 @@ def test_disc_area_is_pi_r_squared():
     d, s = 0.7, 4
     image = rasterize(p, ImageGrid.square_2d(110, d), 60.0, supersample=s)
     area = image.sum() * d * d
-    assert abs(area - math.pi * 30 ** 2) <= 2 * math.pi * 30 * d / s  # pi r^2 (closed form)
+    # pi r^2 (closed form), within perimeter x h (bound in the module docstring)
+    assert abs(area - math.pi * 30 ** 2) <= 2 * math.pi * 30 * d / s
     assert image.min() >= 0.0 and image.max() == 1.0
 
 
@@ -49,6 +50,7 @@ def test_sub_sampling_converges_to_the_area():
     errors = [abs(rasterize(p, grid, 60.0, supersample=s).sum() - math.pi * 20 * 11)
               for s in (1, 8)]
     assert errors[1] < errors[0]
+    # bound of the module docstring: perimeter (at most 2 pi a for a <= 20) x h = 1/8 mm
     assert errors[1] <= 2 * math.pi * 20 / 8
 
 
@@ -90,9 +92,9 @@ def test_add_on_vacuum_and_after_a_later_replace():
               "  - {shape: circle, radius: 5, mu: 0.02 /mm}\n"
               "  - {shape: circle, radius: 2, mu: 0.005 /mm, mode: add}\n")
     grid = ImageGrid.square_2d(1, 0.01)  # one tiny pixel at the origin
-    assert rasterize(p, grid, 60.0)[0, 0] == pytest.approx(0.025)
+    assert rasterize(p, grid, 60.0)[0, 0] == pytest.approx(0.025)  # 0.02 + 0.005 by the rule
     off = ImageGrid.square_2d(1, 0.01, centre_mm=(7.0, 0.0))
-    assert rasterize(p, off, 60.0)[0, 0] == pytest.approx(0.01)
+    assert rasterize(p, off, 60.0)[0, 0] == pytest.approx(0.01)  # vacuum + 0.01 by the rule
 
 
 def test_sphere_and_cone_volumes():
@@ -121,13 +123,15 @@ def test_shepp_logan_values_at_known_points():
     for (x, y), expected in (((0, 0), 0.0204), ((0, 35), 0.0206), ((0, 90), 0.04),
                              ((0, 100), 0.0)):
         grid = ImageGrid.square_2d(1, 1e-3, centre_mm=(x, y))
+        # abs: float64 rounding of the sums (common practice)
         assert rasterize(p, grid, 60.0, supersample=1)[0, 0] == pytest.approx(expected, abs=1e-12)
 
 
 def test_catalogue_water_at_60_kev():
     p = two_d("  - {shape: circle, radius: 50, material: water}\n")
     value = rasterize(p, ImageGrid.square_2d(1, 1.0), 60.0)[0, 0]
-    # NIST XCOM, water, 60 keV, total with coherent: 0.2059 cm^2/g (recalled from memory)
+    # NIST XCOM, water, 60 keV, total with coherent: 0.2059 cm^2/g (recalled from memory);
+    # 1 %: the spread between cross-section compilations (common practice)
     assert value == pytest.approx(0.02059, rel=0.01)
 
 
@@ -165,6 +169,7 @@ def test_voxel_phantom_resamples_to_itself_on_its_own_grid(tmp_path):
     mu = material_mu(p.materials, 60.0)
     expected = np.choose(volume, [0.0, mu[p.voxels.label_material[1]],
                                   mu[p.voxels.label_material[2]]])
+    # every sub-sample lies in the pixel's own voxel: its value exactly (float64 rounding)
     np.testing.assert_allclose(image, expected, rtol=1e-12)
     # a grid of half-size pixels sees every voxel value 2 x 2 times
     fine = rasterize(p, ImageGrid((1, 12, 16), (1.0, 1.0, 1.0), (1.0, -1.0, 0.0), 2), 60.0)

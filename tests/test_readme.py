@@ -32,7 +32,7 @@ def test_python_example_runs(monkeypatch):
     namespace: dict = {}
     exec(compile(blocks[0], "README.md", "exec"), namespace)  # noqa: S102 - our own README
     assert namespace["sino"].shape == namespace["poses"].projection_shape
-    assert namespace["truth"].shape == (512, 512)
+    assert namespace["truth"].shape == (512, 512)  # the image size the README example asks for
 
 
 @pytest.mark.parametrize("line", [ln for b in _blocks("") for ln in b.splitlines()

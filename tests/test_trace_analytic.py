@@ -313,6 +313,8 @@ def test_polygon_against_exact_clipping(n, seed):
     item = obj("polygon", centre=c, rotation=rot, vertices=verts)
     lo, ld = to_local(rot, c, o, d)
     want = polygon_reference(lo, ld, verts)
+    # 1e-9 of the largest vertex radius (30 mm): the reference's edge crossings are solved
+    # in the local frame after a rotation (float64 rounding with margin, common practice)
     np.testing.assert_allclose(traced(item, o, d), want, rtol=0, atol=1e-9 * 30.0)
 
 
@@ -364,4 +366,6 @@ def test_shepp_logan_parallel_projections():
                                    b * scale, ang, rho / scale)
     assert p.shape == (90, 257)
     np.testing.assert_allclose(p, want, rtol=0, atol=1e-10 * np.abs(want).max())
+    # not vacuous: along the long axis the outer pair gives 2 x 92 x 0.02 - 2 x 87.4 x 0.0098
+    # = 1.97 (closed form, chords of the two largest ellipses)
     assert np.abs(want).max() > 1.0
