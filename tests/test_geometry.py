@@ -507,8 +507,8 @@ def test_documentation_example_parses():
     block = re.findall(r"```yaml\n(.*?)```", text, re.S)[0]
     p = geometry_from_text(block).poses()
     assert p.projection_shape == (2, 192, 256)  # as written in docs/geometry.md
-    # the second view is phi = 10 deg: direction d = (-sin 10, cos 10, 0) (ARCHITECTURE.md);
-    # atol 1e-4 is looser than float64 needs (common practice)
+    # the second view is phi = 10 deg: direction d = (-sin 10, cos 10, 0) (ARCHITECTURE.md),
+    # to the 4-5 decimals the documentation writes its pose coordinates with (atol 1e-4)
     np.testing.assert_allclose(p.direction[1], [-math.sin(math.radians(10)),
                                                 math.cos(math.radians(10)), 0], atol=1e-4)
 

@@ -219,12 +219,13 @@ def test_materials_catalogue_custom_and_unused():
 def test_shepp_logan_matches_the_published_table():
     p = load_phantom(shipped_phantom_path("shepp-logan"))
     # Kak & Slaney, Principles of Computerized Tomographic Imaging, Table 3.1 (recalled from
-    # memory): (x, y, major, minor, angle deg, intensity); scaled here by 100 mm and 0.02 /mm
+    # memory; ellipse i at y = -0.606, which some reproductions print as -0.605):
+    # (x, y, major, minor, angle deg, intensity); scaled here by 100 mm and 0.02 /mm
     table = [(0, 0, .92, .69, 90, 2.0), (0, -.0184, .874, .6624, 90, -.98),
              (.22, 0, .31, .11, 72, -.02), (-.22, 0, .41, .16, 108, -.02),
              (0, .35, .25, .21, 90, .01), (0, .1, .046, .046, 0, .01),
              (0, -.1, .046, .046, 0, .01), (-.08, -.605, .046, .023, 0, .01),
-             (0, -.605, .023, .023, 0, .01), (.06, -.605, .046, .023, 90, .01)]
+             (0, -.606, .023, .023, 0, .01), (.06, -.605, .046, .023, 90, .01)]
     o = p.objects
     mu = np.array([m.mu_per_mm for m in p.materials])[o.material]
     for k, (x, y, a, b, ang, rho) in enumerate(table):
