@@ -20,6 +20,7 @@ Divergent beam (fan, cone): the ray runs from the (focal spot) point to the dete
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
@@ -87,6 +88,14 @@ class Poses:
         if self.dimension == 2:
             return (self.n_views, self.n_cols)
         return (self.n_views, self.n_rows, self.n_cols)
+
+    def select(self, views) -> "Poses":
+        """The poses of some views only (cells, pitch and detector shape unchanged)."""
+        views = np.asarray(views, dtype=np.int64)
+        return dataclasses.replace(
+            self, source=self.source[views], direction=self.direction[views],
+            detector_centre=self.detector_centre[views], u_axis=self.u_axis[views],
+            v_axis=self.v_axis[views], angles_rad=self.angles_rad[views])
 
     def to_record(self) -> dict:
         """Every pose array as plain values, for JSON sidecars (NaN angles become null)."""

@@ -166,7 +166,9 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
             poses=None, pitch_mm: tuple[float, float] | None = None, sdd_mm: float | None = None,
             subrays: bool = False, spectrum: SpectrumArrays | None = None,
             rng: np.random.Generator | int | None = 0, noise: bool = True,
-            starvation_floor: float = DEFAULT_FLOOR_COUNTS, dtype=np.float32) -> Measurement:
+            starvation_floor: float = DEFAULT_FLOOR_COUNTS, dtype=np.float32,
+            calibration: tuple[np.ndarray, np.ndarray] | None = None,
+            lag_state: np.ndarray | None = None) -> Measurement:
     """Simulate a scan's raw counts, flat and dark frames and projections.
 
     Parameters
@@ -199,6 +201,13 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
         Floor of ``counts - dark`` before the logarithm, counts.
     dtype : numpy dtype
         Dtype of the returned arrays (float32 for large runs; float64 for exact checks).
+    calibration : (flat, dark), optional
+        For a scan measured in blocks of views: the flat and dark frames of the first block
+        (as it returned them), used for every later block instead of new ones.
+    lag_state : float64 (n_outputs, cells), optional
+        For a scan measured in blocks of views: the detector's lagged signal before this
+        block (NaN before the first), updated in place (see
+        :func:`simbench.measure.detector.apply_readout`).
 
     Returns
     -------
@@ -356,7 +365,7 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
                   electronic_noise=sigma,
                   normals=((z_readout[0] if z_readout else streams[2].standard_normal(scan.shape))
                            if noisy_readout else None),
-                  full_scale=det.full_scale, hot=hot.reshape(-1))
+                  full_scale=det.full_scale, hot=hot.reshape(-1), lag_state=lag_state)
     flat = flat * (gain * ~dead)
     flat += det.dark_level
     dark = np.full(flat.shape, det.dark_level, dtype=np.float64)
@@ -367,6 +376,11 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
         flat = np.minimum(flat, det.full_scale)
         flat[..., hot] = det.full_scale
 
+    if calibration is not None:
+        # the frames of the first block: one flat and one dark for the whole scan
+        flat, dark = (np.asarray(a, dtype=np.float64) for a in calibration)
+        if not det.photon_counting:
+            flat, dark = flat[None], dark[None]
     projections, starvation = log_normalize(scan, flat, dark, view_axis=1,
                                             floor=starvation_floor, dtype=dtype)
     if not det.photon_counting:

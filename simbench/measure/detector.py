@@ -463,16 +463,20 @@ def apply_lag(values: np.ndarray, lag: float, view_axis: int, *,
 
 
 @njit(parallel=True, cache=True)
-def _readout_kernel(scan, lag, gain, offset, sigma, normals, full_scale, hot):  # pragma: no cover
+def _readout_kernel(scan, lag, gain, offset, sigma, normals, full_scale, hot,
+                    state):  # pragma: no cover - compiled
     """In place on (B, V, N): lag along V, then gain, offset, noise, saturation, hot cells.
 
     Columns in parallel (chunks of 512 cells of each output row), views in order; every value
     has a fixed formula and order, so the result does not depend on the number of threads.
     ``normals`` is (B, V, N) standard normal deviates, or empty (no electronic noise).
+    ``state`` is (B, N), or empty: the lagged signal of the view before the first one (NaN
+    where there is none), replaced by that of the last view.
     """
     n_out, n_views, n = scan.shape
     keep = 1.0 - lag
     noisy = normals.shape[0] > 0
+    carry = state.shape[0] > 0
     n_chunks = (n + 511) // 512
     for task in prange(n_out * n_chunks):
         b = task // n_chunks
@@ -480,16 +484,20 @@ def _readout_kernel(scan, lag, gain, offset, sigma, normals, full_scale, hot):  
         stop = min(n, start + 512)
         m = stop - start
         prev = np.empty(m)
+        has_prev = np.zeros(m, dtype=np.bool_)
+        if carry:
+            for i in range(m):
+                prev[i] = state[b, start + i]
+                has_prev[i] = not math.isnan(prev[i])
         g = gain[start:stop]
         h = hot[start:stop]
         # (slices indexed from 0, so that the loop carries no negative-index checks)
         for v in range(n_views):
             row = scan[b, v, start:stop]
             z = normals[b, v, start:stop] if noisy else row
-            use_lag = lag > 0.0 and v > 0
             for i in range(m):
                 x = row[i]
-                if use_lag:
+                if lag > 0.0 and (v > 0 or has_prev[i]):
                     x = keep * x + lag * prev[i]
                 prev[i] = x
                 y = x * g[i] + offset
@@ -500,11 +508,15 @@ def _readout_kernel(scan, lag, gain, offset, sigma, normals, full_scale, hot):  
                 if h[i]:
                     y = full_scale
                 row[i] = y
+        if carry and n_views > 0:
+            for i in range(m):
+                state[b, start + i] = prev[i]
 
 
 def apply_readout(scan: np.ndarray, *, lag: float, gain: np.ndarray, dark_level: float,
                   electronic_noise: float = 0.0, normals: np.ndarray | None = None,
-                  full_scale: float | None = None, hot: np.ndarray | None = None) -> np.ndarray:
+                  full_scale: float | None = None, hot: np.ndarray | None = None,
+                  lag_state: np.ndarray | None = None) -> np.ndarray:
     """Lag, gain, dark level, electronic noise, saturation and hot cells of a scan, in place.
 
     Parameters
@@ -525,6 +537,10 @@ def apply_readout(scan: np.ndarray, *, lag: float, gain: np.ndarray, dark_level:
         Saturation level; hot cells read it.
     hot : bool (N,), optional
         Hot cells (only with ``full_scale``).
+    lag_state : C-contiguous float64 (B, N), optional
+        For a scan read in blocks of views: the lagged signal of the view before this block
+        (NaN for none, as before the first block), replaced in place by that of this
+        block's last view, so that blocks read one after the other equal one whole read.
 
     Returns
     -------
@@ -547,6 +563,14 @@ def apply_readout(scan: np.ndarray, *, lag: float, gain: np.ndarray, dark_level:
     top = np.inf if full_scale is None else float(full_scale)
     hot_arr = (np.zeros(n, dtype=np.bool_) if hot is None or full_scale is None
                else np.ascontiguousarray(hot, dtype=np.bool_).reshape(n))
+    if lag_state is None:
+        state = np.empty((0, 0))
+    else:
+        state = lag_state
+        if not (state.dtype == np.float64 and state.flags.c_contiguous
+                and state.shape == (scan.shape[0], n)):
+            raise ValueError(f"lag_state must be a C-contiguous float64 array shaped "
+                             f"({scan.shape[0]}, {n})")
     _readout_kernel(scan, float(lag) if lag > 0 else 0.0, gain, float(dark_level),
-                    float(electronic_noise), normals, top, hot_arr)
+                    float(electronic_noise), normals, top, hot_arr, state)
     return scan
