@@ -99,3 +99,24 @@ def test_readout_in_blocks_with_lag_state_equals_one_pass():
     second = apply_readout(np.ascontiguousarray(scan[:, 17:]), normals=normals[:, 17:],
                            lag_state=state, **kwargs)
     assert np.array_equal(np.concatenate([first, second], axis=1), whole)
+
+
+def test_electronic_noise_adds_its_variance_to_a_polychromatic_scan():
+    # Independent noises add their variances (fact of probability): an energy-integrating
+    # air scan read with electronic noise sigma has the variance of the same scan without
+    # it plus sigma^2. 40 000 readings estimate a variance to about 0.7 % (sqrt(2/n)); 5 %
+    # leaves room for the estimate of both scans (common practice).
+    from simbench.measure import SpectrumArrays, measure
+    from simbench.measure.config import DetectorConfig, ExposureConfig, Physics, SourceConfig
+    from simbench.measure.noise import rng_for
+
+    spectrum = SpectrumArrays(np.linspace(30.0, 90.0, 13), np.linspace(2.0, 1.0, 13))
+    lengths = np.zeros((1, 200, 200))
+    var = {}
+    for sigma in (0.0, 40.0):
+        phys = Physics(SourceConfig("file"), ExposureConfig(air_counts=1e4),
+                       DetectorConfig(electronic_noise=sigma))
+        m = measure(lengths, np.zeros((1, 13)), phys, spectrum=spectrum, pitch_mm=(1.0, 1.0),
+                    rng=rng_for(3, "electronic", sigma), dtype=np.float64)
+        var[sigma] = float(np.var(m.counts))
+    assert var[40.0] - var[0.0] == pytest.approx(40.0**2, rel=0.05)

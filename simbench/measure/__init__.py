@@ -277,7 +277,8 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
     if noise and not det.photon_counting and energies.size != 1:
         wait_normals = start_standard_normals(
             (streams[0], (int(np.prod(shape)),)),
-            *([(streams[2], (1,) + tuple(shape))] if det.electronic_noise > 0 else []))
+            *([(streams[2], (1,) + tuple(shape))] if det.electronic_noise > 0 else []),
+            dtype=np.float32)
 
     # energies that reach no output (zero fluence, or outside every bin) are skipped
     keep = np.any(weights != 0, axis=0)

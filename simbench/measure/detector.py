@@ -469,13 +469,14 @@ def _readout_kernel(scan, lag, gain, offset, sigma, normals, full_scale, hot,
 
     Columns in parallel (chunks of 512 cells of each output row), views in order; every value
     has a fixed formula and order, so the result does not depend on the number of threads.
-    ``normals`` is (B, V, N) standard normal deviates, or empty (no electronic noise).
+    ``normals`` is (B, V, N) standard normal deviates (float64 or float32), or shaped
+    (1, 1, 0) for no electronic noise.
     ``state`` is (B, N), or empty: the lagged signal of the view before the first one (NaN
     where there is none), replaced by that of the last view.
     """
     n_out, n_views, n = scan.shape
     keep = 1.0 - lag
-    noisy = normals.shape[0] > 0
+    noisy = normals.shape[2] > 0
     carry = state.shape[0] > 0
     n_chunks = (n + 511) // 512
     for task in prange(n_out * n_chunks):
@@ -494,7 +495,8 @@ def _readout_kernel(scan, lag, gain, offset, sigma, normals, full_scale, hot,
         # (slices indexed from 0, so that the loop carries no negative-index checks)
         for v in range(n_views):
             row = scan[b, v, start:stop]
-            z = normals[b, v, start:stop] if noisy else row
+            # (an empty slice of the same type when there is no noise: it is never read)
+            z = normals[b, v, start:stop] if noisy else normals[0, 0, 0:0]
             for i in range(m):
                 x = row[i]
                 if lag > 0.0 and (v > 0 or has_prev[i]):
@@ -531,7 +533,7 @@ def apply_readout(scan: np.ndarray, *, lag: float, gain: np.ndarray, dark_level:
         Offset added to every reading, counts.
     electronic_noise : float
         rms of the electronic noise of a reading, counts.
-    normals : float64 (B, V, N), optional
+    normals : float64 or float32 (B, V, N), optional
         One standard normal deviate per reading (no electronic noise without them).
     full_scale : float, optional
         Saturation level; hot cells read it.
@@ -558,8 +560,13 @@ def apply_readout(scan: np.ndarray, *, lag: float, gain: np.ndarray, dark_level:
     n = scan.shape[2]
     gain = np.ascontiguousarray(gain, dtype=np.float64).reshape(n)
     noisy = normals is not None and electronic_noise > 0
-    normals = (np.ascontiguousarray(normals, dtype=np.float64).reshape(scan.shape) if noisy
-               else np.empty((0, 0, 0)))
+    if noisy:
+        normals = np.ascontiguousarray(normals)
+        if normals.dtype != np.float32:
+            normals = normals.astype(np.float64, copy=False)
+        normals = normals.reshape(scan.shape)
+    else:
+        normals = np.empty((1, 1, 0))
     top = np.inf if full_scale is None else float(full_scale)
     hot_arr = (np.zeros(n, dtype=np.bool_) if hot is None or full_scale is None
                else np.ascontiguousarray(hot, dtype=np.bool_).reshape(n))
