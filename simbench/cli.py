@@ -15,9 +15,8 @@ from pathlib import Path
 import numpy as np
 
 import simbench
+from simbench.data import shipped_files
 from simbench.errors import InputError, Where
-
-DATA = Path(__file__).resolve().parent / "data"
 
 EXAMPLES = {
     "trace": "simbench trace shepp-logan parallel-bench-2d --energy 60 -o sino.npy",
@@ -34,19 +33,13 @@ EXAMPLES = {
 # ------------------------------------------------------------------------------------------
 
 
-def shipped(kind: str) -> dict[str, Path]:
-    """Shipped files of a kind (``"phantoms"`` or ``"scanners"``) by name (file stem)."""
-    folder = DATA / kind
-    return {p.stem: p for p in sorted(folder.glob("*.yaml"))}
-
-
 def resolve(name_or_path: str, kind: str) -> Path:
     """An existing path as given, else the shipped file of that name, else the path as given
     (so that the loader reports it missing with its own message)."""
     path = Path(name_or_path)
     if path.exists():
         return path
-    files = shipped(kind)
+    files = shipped_files(kind)
     stem = path.name[:-5] if path.name.endswith(".yaml") else path.name
     if path.parent == Path(".") and stem in files:
         return files[stem]
@@ -172,8 +165,8 @@ def cmd_spectrum(args: argparse.Namespace) -> int:
 def cmd_list(args: argparse.Namespace) -> int:
     from simbench.materials import material_names
 
-    print("shipped phantoms:  " + ", ".join(shipped("phantoms")))
-    print("shipped scanners:  " + ", ".join(shipped("scanners")))
+    print("shipped phantoms:  " + ", ".join(shipped_files("phantoms")))
+    print("shipped scanners:  " + ", ".join(shipped_files("scanners")))
     print("catalogue materials: " + ", ".join(material_names()))
     return 0
 

@@ -89,27 +89,6 @@ def test_missing_phantom_file(disc_files, tmp_path, capsys):
     assert not (tmp_path / "x.npy").exists()
 
 
-def test_yaml_syntax_error_names_line(tmp_path, disc_files, capsys):
-    _, scanner = disc_files
-    bad = tmp_path / "bad.yaml"
-    bad.write_text("name: x\ndimension: 2\nobjects:\n  - {shape: circle, radius: 3\n")
-    code = main(["trace", str(bad), str(scanner), "--energy", "60", "-o", str(tmp_path / "x.npy")])
-    assert code == 2
-    line = _error_line(capsys)
-    assert "bad.yaml:" in line and "YAML" in line
-
-
-def test_sdd_not_beyond_sid_is_refused(tmp_path, disc_files, capsys):
-    phantom, _ = disc_files
-    scanner = tmp_path / "fan.yaml"
-    scanner.write_text("name: f\ngeometry:\n  type: fan\n  sid: 500 mm\n  sdd: 400 mm\n"
-                       "  columns: 10\n  column_pitch: 1 mm\n  views: 10\n")
-    code = main(["trace", str(phantom), str(scanner), "--energy", "60", "-o", str(tmp_path / "x.npy")])
-    assert code == 2
-    line = _error_line(capsys)
-    assert "fan.yaml:5" in line and "sdd" in line
-
-
 def test_bad_energy_and_output_suffix(disc_files, tmp_path, capsys):
     phantom, scanner = disc_files
     assert main(["trace", str(phantom), str(scanner), "--energy", "-5",

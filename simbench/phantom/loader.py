@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from simbench.data import FOLDER as DATA_FOLDER, shipped_files
 from simbench.phantom.compiled import Phantom
 from simbench.phantom.language import read_document
 from simbench.spec import load_yaml, parse_yaml_text
@@ -61,12 +62,10 @@ def parse_phantom_text(text: str, source: str = "<text>", directory: str | Path 
 
 def shipped_phantom_path(name: str) -> Path:
     """Path of a phantom shipped with simbench, e.g. ``"shepp-logan"`` (``.yaml`` optional)."""
-    folder = Path(__file__).resolve().parent.parent / "data" / "phantoms"
     stem = name[:-5] if name.endswith(".yaml") else name
-    return folder / f"{stem}.yaml"
+    return DATA_FOLDER / "phantoms" / f"{stem}.yaml"
 
 
 def shipped_phantom_names() -> list[str]:
     """Names of the phantoms shipped with simbench."""
-    folder = Path(__file__).resolve().parent.parent / "data" / "phantoms"
-    return sorted(p.stem for p in folder.glob("*.yaml"))
+    return list(shipped_files("phantoms"))
