@@ -80,7 +80,7 @@ def _check_output(path: str, suffix: str, option: str = "-o") -> Path:
 def cmd_trace(args: argparse.Namespace) -> int:
     from simbench.atomic import write_json, write_npy
     from simbench.materials import mu_table
-    from simbench.execute.scan import warn_if_truncated
+    from simbench.execute.scan import edge_columns, warn_if_truncated
     from simbench.trace import iter_trace, line_integrals
 
     out = _check_output(args.output, ".npy")
@@ -95,7 +95,7 @@ def cmd_trace(args: argparse.Namespace) -> int:
     edges = np.zeros((len(phantom.materials), poses.n_views, 2))
     for views, lengths in iter_trace(phantom, poses):
         sinogram[views] = line_integrals(lengths, mu)
-        edges[:, views] = lengths[..., [0, -1]].reshape(len(mu), len(views), -1, 2).max(axis=2)
+        edges[:, views] = edge_columns(lengths)
     seconds = time.perf_counter() - started
     warn_if_truncated(edges, scanner.source)
     write_npy(out, np.ascontiguousarray(sinogram, dtype=np.float64))

@@ -27,9 +27,17 @@ import simbench
 from simbench.errors import InputError, InputWarning, Where
 
 
+def edge_columns(path_lengths: np.ndarray) -> np.ndarray:
+    """The largest path length in the first and last detector column of each view, shaped
+    (materials, views, 2): what :func:`warn_if_truncated` needs of a block of views."""
+    lengths = np.asarray(path_lengths)
+    return lengths[..., [0, -1]].reshape(lengths.shape[0], lengths.shape[1], -1, 2).max(axis=2)
+
+
 def warn_if_truncated(path_lengths, scanner_source, *, sub_rays: bool = False) -> float:
     """Warn (one line) when edge cells of the detector see the object; return the fraction
-    of views in which they do (:func:`simbench.trace.edge_truncation`)."""
+    of views in which they do (:func:`simbench.trace.edge_truncation`). ``path_lengths`` may
+    be the whole array or the output of :func:`edge_columns`."""
     from simbench.trace import edge_truncation
 
     fraction = edge_truncation(path_lengths, sub_rays=sub_rays)
@@ -181,7 +189,7 @@ def run_scan(phantom, scanner, out: Path, *, seed: int = 0, noise: bool = True,
             lengths = trace(phantom, poses, cell_samples=cells, spot_samples=spot, views=views)
             timings["trace"] += time.perf_counter() - started
             centre = lengths.mean(axis=-1) if subrays else lengths
-            edges[:, views] = centre[..., [0, -1]].reshape(n_mat, len(views), -1, 2).max(axis=2)
+            edges[:, views] = edge_columns(centre)
             started = time.perf_counter()
             result = measure(lengths, phantom.materials, physics, poses=poses.select(views),
                              subrays=subrays, spectrum=spectrum,
