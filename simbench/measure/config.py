@@ -58,6 +58,8 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from simbench.errors import InputError, Where
+from simbench.materials.attenuation import VALID_ENERGY_RANGE_KEV
+from simbench.materials.spectra import KVP_RANGE
 from simbench.spec import Section, check_integer, parse_energy, parse_length
 
 #: anode angles (degrees) and spectrum bin widths (keV) the tube-spectrum model accepts
@@ -66,12 +68,6 @@ ENERGY_BIN_RANGE_KEV = (0.1, 2.0)
 
 #: the most photon-counting thresholds (energy bins) a detector may have
 MAX_THRESHOLDS = 8
-
-#: tube voltages (kV) accepted when the spectrum module does not state its own range
-DEFAULT_KVP_RANGE = (20.0, 150.0)
-
-#: photon energies (keV) accepted when the attenuation module does not state its own range
-DEFAULT_ENERGY_RANGE_KEV = (1.0, 1000.0)
 
 #: densities (g/cm^3) of common sensor materials (recalled from memory; CRC Handbook values)
 SENSOR_DENSITY_G_CM3 = {
@@ -84,24 +80,6 @@ SENSOR_DENSITY_G_CM3 = {
     "GaAs": 5.32,
     "Se": 4.28,
 }
-
-
-def kvp_range() -> tuple[float, float]:
-    """The tube voltages (kV) that the tube-spectrum model covers."""
-    try:
-        from simbench.materials import spectra
-    except ImportError:
-        return DEFAULT_KVP_RANGE
-    return tuple(getattr(spectra, "KVP_RANGE", DEFAULT_KVP_RANGE))
-
-
-def energy_range_kev() -> tuple[float, float]:
-    """The photon energies (keV) that the attenuation tables cover."""
-    try:
-        from simbench.materials import attenuation
-    except ImportError:
-        return DEFAULT_ENERGY_RANGE_KEV
-    return tuple(getattr(attenuation, "VALID_ENERGY_RANGE_KEV", DEFAULT_ENERGY_RANGE_KEV))
 
 
 # --------------------------------------------------------------------------------------------
@@ -332,7 +310,7 @@ def parse_source(section: Section) -> SourceConfig:
                 raise section.error(key, f"'{key}' does not apply to a monochromatic source",
                                     "remove it, or give 'kvp' for a tube")
         energy = section.energy("energy")
-        lo, hi = energy_range_kev()
+        lo, hi = VALID_ENERGY_RANGE_KEV
         if not lo <= energy <= hi:
             raise section.error("energy", f"energy {energy:g} keV is outside the attenuation tables",
                                 f"an energy from {lo:g} to {hi:g} keV")
@@ -355,7 +333,7 @@ def parse_source(section: Section) -> SourceConfig:
                             filtration=tuple(filtration), **common)
 
     kvp = section.number("kvp")
-    lo, hi = kvp_range()
+    lo, hi = KVP_RANGE
     if not lo <= kvp <= hi:
         raise section.error("kvp", f"tube voltage {kvp:g} kV is outside the tube model's range",
                             f"a kVp from {lo:g} to {hi:g}")
