@@ -50,6 +50,7 @@ class Scanner:
         scanner has no source section.
         """
         from simbench.materials import spectra
+        from simbench.materials.spectrum_file import load_spectrum
 
         if self.physics is None:
             raise InputError(Where(str(self.source), field="source"),
@@ -60,7 +61,7 @@ class Scanner:
         src = self.physics.source
         if src.kind != "file":
             return source_spectrum(src)
-        spectrum = spectra.load_spectrum(self.spectrum_file_path())
+        spectrum = load_spectrum(self.spectrum_file_path())
         for material, thickness_mm in src.filtration:
             spectrum = spectra.filtered(spectrum, material, thickness_mm)
         return spectrum

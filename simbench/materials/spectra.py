@@ -464,19 +464,8 @@ def tube_spectrum(kvp: float, *, anode_angle_deg: float = 12.0,
     return spectrum
 
 
-def load_spectrum(path) -> Spectrum:
-    """Read a spectrum file; see :func:`simbench.materials.spectrum_file.load_spectrum`.
-
-    Kept here so that ``simbench.materials.spectra.load_spectrum`` works; the file reading
-    itself lives in :mod:`simbench.materials.spectrum_file`.
-    """
-    from simbench.materials.spectrum_file import load_spectrum as _load
-
-    return _load(path)
-
-
 __all__ = [
     "KVP_RANGE", "MEAN_DEPTH_FRACTION", "Spectrum", "air_kerma_ugy", "air_kerma_weights",
-    "effective_energy_kev", "filtered", "half_value_layer_mm", "hvl_mm_al", "load_spectrum",
+    "effective_energy_kev", "filtered", "half_value_layer_mm", "hvl_mm_al",
     "mean_energy_kev", "monochromatic", "second_hvl_mm_al", "tube_spectrum",
 ]

@@ -18,6 +18,7 @@ from typing import Any
 import numpy as np
 
 from simbench.errors import InputError, Where
+from simbench.materials import catalogue
 from simbench.materials.spec import MaterialSpec
 from simbench.phantom import compiled as C
 from simbench.phantom.polygon import polygon_problem
@@ -102,7 +103,6 @@ class Reader:
                              "a catalogue or custom material name such as 'water'")
         if name in self.custom:
             return self.use_material(("custom", name), lambda: self.custom[name])
-        catalogue = _catalogue()
         try:
             spec = catalogue.get_material(name)
         except KeyError:
@@ -120,15 +120,6 @@ class Reader:
         value = float(mu_per_mm)
         return self.use_material(("mu", value), lambda: MaterialSpec(
             name=f"mu={value:.12g}/mm", kind="mu", mu_per_mm=value))
-
-
-def _catalogue():
-    try:
-        from simbench.materials import catalogue
-    except ImportError as exc:  # pragma: no cover - the catalogue ships with the package
-        raise InputError(Where("<materials>"), f"the material catalogue cannot be loaded: {exc}",
-                         "explicit 'mu: <value> /mm' materials") from None
-    return catalogue
 
 
 # --------------------------------------------------------------------------------------------
@@ -177,7 +168,6 @@ def read_document(document: Any, source: str, directory: Path | None) -> C.Phant
 
 
 def _read_custom_materials(reader: Reader, section: Section) -> None:
-    catalogue = _catalogue()
     for mat_name in section.keys():
         where = section.at(mat_name)
         if not isinstance(mat_name, str):
