@@ -106,7 +106,7 @@ def check_bytes(need: float, where: Where | str, what: str, valid: str) -> None:
     """
     budget, origin = memory_budget_bytes()
     if need > budget:
-        raise InputError(where, f"{what} needs about {format_bytes(need)} of memory, over the "
+        raise InputError(where, f"{what} would need about {format_bytes(need)} of memory, over the "
                          f"budget of {format_bytes(budget)} ({origin})",
                          f"{valid}, or a larger budget with --memory-budget or "
                          f"{ENVIRONMENT_VARIABLE}")
