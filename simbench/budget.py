@@ -50,10 +50,12 @@ def parse_size(text: str, where: Where | str) -> int:
     return int(number)
 
 
-def set_memory_budget(size: int | None) -> None:
-    """Set (bytes) or clear (None) the budget given on the command line."""
+def set_memory_budget(size: int | None) -> int | None:
+    """Set (bytes) or clear (None) the budget given on the command line; returns the
+    previous setting, so that a caller can put it back."""
     global _override
-    _override = None if size is None else int(size)
+    previous, _override = _override, (None if size is None else int(size))
+    return previous
 
 
 def available_memory_bytes() -> int | None:

@@ -7,7 +7,9 @@ Every bad input ends as one line on standard error, ``simbench: error: <file>:<l
 from __future__ import annotations
 
 import argparse
+import signal
 import sys
+import threading
 import time
 import warnings
 from pathlib import Path
@@ -79,15 +81,26 @@ def _check_output(path: str, suffix: str, option: str = "-o") -> Path:
 
 def cmd_trace(args: argparse.Namespace) -> int:
     from simbench.atomic import write_json, write_npy
-    from simbench.materials import mu_table
+    from simbench.budget import check_bytes
     from simbench.execute.scan import edge_columns, warn_if_truncated
-    from simbench.trace import iter_trace, line_integrals
+    from simbench.folders import file_sha256
+    from simbench.materials import mu_table
+    from simbench.trace import iter_trace, line_integrals, trace
 
     out = _check_output(args.output, ".npy")
     energy = _energy_option(args.energy)
     phantom, scanner = _load(args.phantom, args.scanner)
+    geometry = scanner.geometry
+    cells = float(geometry.n_rows) * geometry.n_cols
+    # the whole sinogram is held (float64) while the views stream through the tracer
+    check_bytes(8.0 * geometry.n_views * cells, Where(str(scanner.source), field="geometry"),
+                f"the line integrals of {geometry.n_views} views of {int(cells)} cells",
+                "fewer views, rows or columns")
     poses = scanner.geometry.poses()
     mu = mu_table(phantom.materials, [energy])[:, 0]
+    started = time.perf_counter()
+    trace(phantom, poses, views=[0])  # compiles the kernels on a first use
+    compile_seconds = time.perf_counter() - started
     started = time.perf_counter()
     # chunk by chunk of views: only the line integrals are kept, so large cone-beam runs
     # need the memory of the output, not of every material's path lengths
@@ -97,11 +110,17 @@ def cmd_trace(args: argparse.Namespace) -> int:
         sinogram[views] = line_integrals(lengths, mu)
         edges[:, views] = edge_columns(lengths)
     seconds = time.perf_counter() - started
+    if not np.isfinite(sinogram).all():
+        raise InputError(Where(str(phantom.source), field="objects"),
+                         "the line integrals are not finite; nothing was written",
+                         "object sizes and material attenuation within their documented ranges")
     warn_if_truncated(edges, scanner.source)
     write_npy(out, np.ascontiguousarray(sinogram, dtype=np.float64))
     sidecar = out.with_suffix(".json")
     write_json(sidecar, {
         "what": "exact monochromatic line integrals (dimensionless), float64",
+        "file": out.name,
+        "sha256": file_sha256(out),
         "layout": "(n_views, n_cols)" if poses.dimension == 2 else "(n_views, n_rows, n_cols)",
         "shape": list(sinogram.shape),
         "energy_kev": energy,
@@ -110,11 +129,13 @@ def cmd_trace(args: argparse.Namespace) -> int:
         "scanner": {"name": scanner.name, "file": str(scanner.source)},
         "geometry": poses.to_record(),
         "trace_seconds": round(seconds, 3),
+        "compile_and_first_view_seconds": round(compile_seconds, 3),
         "simbench_version": simbench.__version__,
         "caution": simbench.CAUTION,
     })
     print(f"wrote {out} {tuple(sinogram.shape)} and {sidecar} "
-          f"(line integrals at {energy:g} keV, max {sinogram.max():.4g}, traced in {seconds:.2f} s)")
+          f"(line integrals at {energy:g} keV, max {sinogram.max():.4g}, traced in {seconds:.2f} s"
+          + (f" after {compile_seconds:.1f} s compiling" if compile_seconds > 1.0 else "") + ")")
     return 0
 
 
@@ -124,8 +145,9 @@ def cmd_draw(args: argparse.Namespace) -> int:
 
     out = _check_output(args.output, ".png")
     energy = _energy_option(args.energy)
+    pixels = _pixels_option(args.pixels)
     phantom = load_phantom(resolve(args.phantom, "phantoms"))
-    draw_phantom(phantom, out, energy_kev=energy, pixels=args.pixels)
+    draw_phantom(phantom, out, energy_kev=energy, pixels=pixels)
     print(f"wrote {out} ({phantom.name}, mu at {energy:g} keV)")
     return 0
 
@@ -201,9 +223,33 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 
 def _energy_option(value: str) -> float:
+    from simbench.materials.attenuation import VALID_ENERGY_RANGE_KEV
     from simbench.spec import parse_energy
 
-    return parse_energy(value, Where("<command line>", field="--energy"))
+    where = Where("<command line>", field="--energy")
+    energy = parse_energy(value, where)
+    lo, hi = VALID_ENERGY_RANGE_KEV
+    if not lo <= energy <= hi:
+        raise InputError(where, f"{energy:g} keV is outside the attenuation tables",
+                         f"an energy from {lo:g} to {hi:g} keV")
+    return energy
+
+
+#: image sizes ``draw`` accepts: enough to see a phantom, small enough for a figure
+PIXELS_RANGE = (16, 4096)
+
+
+def _pixels_option(value: str) -> int:
+    lo, hi = PIXELS_RANGE
+    try:
+        pixels = int(value)
+    except ValueError:
+        pixels = None
+    if pixels is None or not lo <= pixels <= hi:
+        raise InputError(Where("<command line>", field="--pixels"),
+                         f"'{value}' is not an image size in pixels", f"a whole number from {lo} "
+                         f"to {hi}")
+    return pixels
 
 
 class _Parser(argparse.ArgumentParser):
@@ -228,6 +274,9 @@ def build_parser() -> argparse.ArgumentParser:
     def command(name: str, help_text: str) -> argparse.ArgumentParser:
         sub = commands.add_parser(name, help=help_text, description=help_text,
                                   epilog=f"example: {EXAMPLES[name]}")
+        sub.add_argument("--memory-budget", metavar="SIZE", default=None,
+                         help="refuse work estimated to need more memory than this, e.g. '8 GiB' "
+                              "(default: $SIMBENCH_MEMORY_BUDGET, else 80%% of available memory)")
         return sub
 
     p = command("trace", "Trace a phantom through a scanner's geometry into exact monochromatic "
@@ -242,7 +291,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("phantom", help="phantom file or shipped phantom name")
     p.add_argument("-o", "--output", required=True, metavar="FILE.png", help="output PNG")
     p.add_argument("--energy", default="60", metavar="KEV", help="energy for mu, keV (default 60)")
-    p.add_argument("--pixels", type=int, default=512, metavar="N", help="image size (default 512)")
+    p.add_argument("--pixels", default="512", metavar="N",
+                   help=f"image size, {PIXELS_RANGE[0]} to {PIXELS_RANGE[1]} (default 512)")
     p.set_defaults(run=cmd_draw)
 
     p = command("scan", "Scan a phantom: raw counts, flat and dark frames and projections, "
@@ -277,8 +327,31 @@ def _one_line_warning(message, category, filename, lineno, file=None, line=None)
     sys.stderr.write(f"simbench: warning: {text}\n")
 
 
+class Interrupted(BaseException):
+    """SIGINT or SIGTERM arrived: unwinds like KeyboardInterrupt so every output in progress
+    is removed by its ``finally`` (temporary files, staging folders)."""
+
+    def __init__(self, signum: int):
+        super().__init__(signum)
+        self.signum = signum
+
+
+def _on_signal(signum, frame) -> None:
+    # one signal is enough: later ones must not interrupt the clean-up of the first
+    for other in (signal.SIGINT, signal.SIGTERM):
+        signal.signal(other, signal.SIG_IGN)
+    raise Interrupted(signum)
+
+
 def main(argv: list[str] | None = None) -> int:
-    """Run the command line; returns the exit code (0 ok, 2 bad input)."""
+    """Run the command line; returns the exit code.
+
+    0 done; 2 bad input (one line naming the file, line, column and field) or an output that
+    cannot be written; 128 + the signal number after SIGINT (130) or SIGTERM (143), with
+    nothing half-written left behind.
+    """
+    from simbench.budget import parse_size, set_memory_budget
+
     parser = build_parser()
     args = parser.parse_args(argv)
     if args.command is None:
@@ -286,13 +359,38 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     previous = warnings.showwarning
     warnings.showwarning = _one_line_warning
+    handlers, previous_budget = {}, None
+    if threading.current_thread() is threading.main_thread():
+        handlers = {s: signal.signal(s, _on_signal) for s in (signal.SIGINT, signal.SIGTERM)}
     try:
+        budget = getattr(args, "memory_budget", None)
+        if budget is not None:
+            previous_budget = set_memory_budget(parse_size(
+                budget, Where("<command line>", field="--memory-budget")))
         return int(args.run(args) or 0)
     except InputError as error:
         sys.stderr.write(f"simbench: error: {error}\n")
         return 2
+    except (Interrupted, KeyboardInterrupt) as stop:
+        signum = getattr(stop, "signum", signal.SIGINT)
+        sys.stderr.write(f"simbench: stopped by {signal.Signals(signum).name}; outputs in "
+                         "progress were removed, finished ones are whole\n")
+        return 128 + int(signum)
+    except OSError as exc:
+        place = exc.filename if exc.filename is not None else "<output>"
+        sys.stderr.write(f"simbench: error: {place}: {exc.strerror or exc} (valid: a path "
+                         "that exists or can be created and written, on a disk with room)\n")
+        return 2
+    except MemoryError:
+        sys.stderr.write("simbench: error: out of memory (valid: a smaller input, or a smaller "
+                         "--memory-budget so that estimates refuse it before the work starts)\n")
+        return 2
     finally:
         warnings.showwarning = previous
+        if getattr(args, "memory_budget", None) is not None:
+            set_memory_budget(previous_budget)
+        for number, handler in handlers.items():
+            signal.signal(number, handler)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -88,10 +88,51 @@ _LocatedLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _
 _LocatedLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_SEQUENCE_TAG, _construct_sequence)
 
 
+#: the largest YAML file read (bytes): a phantom or scanner file of hand-written text is a few
+#: KiB; long pose lists belong in a pose file (.npy or .csv), which has its own limits
+MAX_YAML_BYTES = 4 * 2**20
+#: the deepest nesting of mappings and lists in a YAML file (the shipped files use fewer than 10)
+MAX_YAML_DEPTH = 64
+#: the longest number written in a YAML file, in characters (float64 needs at most 25)
+MAX_NUMBER_CHARACTERS = 64
+
+_NUMBER_LIKE = re.compile(r"^[-+]?[0-9][0-9_.,eE+-]*$")
+
+
+def _check_structure(text: str, source: str) -> None:
+    """Refuse nesting deeper than :data:`MAX_YAML_DEPTH` and absurdly long numbers, from the
+    parser's events (an iterative pass, before any recursive construction)."""
+    depth = 0
+    for event in yaml.parse(text, Loader=yaml.SafeLoader):
+        if isinstance(event, (yaml.MappingStartEvent, yaml.SequenceStartEvent)):
+            depth += 1
+            if depth > MAX_YAML_DEPTH:
+                mark = event.start_mark
+                raise InputError(Where(source, mark.line + 1, mark.column + 1, ""),
+                                 f"lists and mappings nested more than {MAX_YAML_DEPTH} deep",
+                                 f"at most {MAX_YAML_DEPTH} levels of nesting")
+        elif isinstance(event, (yaml.MappingEndEvent, yaml.SequenceEndEvent)):
+            depth -= 1
+        elif (isinstance(event, yaml.ScalarEvent) and event.style is None
+              and len(event.value) > MAX_NUMBER_CHARACTERS and _NUMBER_LIKE.match(event.value)):
+            mark = event.start_mark
+            raise InputError(Where(source, mark.line + 1, mark.column + 1, ""),
+                             f"a number written with {len(event.value)} characters",
+                             f"a number of at most {MAX_NUMBER_CHARACTERS} characters, such as "
+                             "1.5e-3")
+
+
 def parse_yaml_text(text: str, source: str = "<input>") -> Any:
-    """Parse YAML text into located nodes; syntax errors become one-line :class:`InputError`."""
+    """Parse YAML text into located nodes; every error becomes one-line :class:`InputError`.
+
+    Nesting deeper than :data:`MAX_YAML_DEPTH` and numbers longer than
+    :data:`MAX_NUMBER_CHARACTERS` are refused before the document is built.
+    """
     try:
+        _check_structure(text, source)
         return yaml.load(text, Loader=_LocatedLoader)  # noqa: S506 - SafeLoader subclass
+    except InputError:
+        raise
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         line = mark.line + 1 if mark is not None else None
@@ -104,6 +145,10 @@ def parse_yaml_text(text: str, source: str = "<input>") -> Any:
         ) from None
     except yaml.YAMLError as exc:  # pragma: no cover - unmarked errors are rare
         raise InputError(Where(source), f"YAML error: {exc}".splitlines()[0]) from None
+    except (ValueError, OverflowError, RecursionError) as exc:  # a value PyYAML cannot build
+        raise InputError(Where(source), "a value cannot be read: "
+                         + (str(exc).splitlines() or [type(exc).__name__])[0][:200],
+                         "plain numbers, text, lists and mappings") from None
 
 
 def load_yaml(path: str | Path, what: str = "file") -> Any:
@@ -119,21 +164,58 @@ def load_yaml(path: str | Path, what: str = "file") -> Any:
     Raises
     ------
     InputError
-        The file is missing, unreadable, not UTF-8 or not valid YAML.
+        The file is missing, not a regular file (a folder, a device, a pipe), larger than
+        :data:`MAX_YAML_BYTES`, unreadable, not UTF-8 (with the line and column of the first
+        bad byte) or not valid YAML.
     """
     path = Path(path)
+    data = read_limited(path, what, MAX_YAML_BYTES, "a YAML file")
     source = str(path)
-    if not path.exists():
-        raise InputError(Where(source), f"{what} not found", "the path of an existing YAML file")
-    if path.is_dir():
-        raise InputError(Where(source), f"{what} is a directory", "the path of a YAML file")
     try:
-        text = path.read_text(encoding="utf-8")
-    except UnicodeDecodeError:
-        raise InputError(Where(source), f"{what} is not UTF-8 text", "a UTF-8 YAML file") from None
-    except OSError as exc:
-        raise InputError(Where(source), f"cannot read {what}: {exc.strerror}") from None
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = data[:exc.start].count(b"\n") + 1
+        column = exc.start - (data.rfind(b"\n", 0, exc.start) + 1) + 1
+        raise InputError(Where(source, line, column, ""),
+                         f"{what} is not UTF-8 text (byte 0x{data[exc.start]:02x})",
+                         "a UTF-8 YAML file") from None
     return parse_yaml_text(text, source)
+
+
+def read_limited(path: Path, what: str, limit: int, valid: str) -> bytes:
+    """The bytes of a regular file of at most ``limit`` bytes, else one-line InputError.
+
+    Devices (``/dev/zero``), pipes and folders are refused before anything is read, so a
+    reader never blocks or reads without end.
+    """
+    source = str(path)
+    try:
+        info = path.stat()
+    except FileNotFoundError:
+        raise InputError(Where(source), f"{what} not found", f"the path of an existing file "
+                         f"({valid})") from None
+    except OSError as exc:
+        raise InputError(Where(source), f"cannot read {what}: {exc.strerror}", valid) from None
+    import stat
+
+    if stat.S_ISDIR(info.st_mode):
+        raise InputError(Where(source), f"{what} is a directory", f"the path of {valid}")
+    if not stat.S_ISREG(info.st_mode):
+        raise InputError(Where(source), f"{what} is not a regular file (a device, pipe or "
+                         "socket)", f"the path of {valid}")
+    if info.st_size > limit:
+        raise InputError(Where(source), f"{what} is {info.st_size / 2**20:.1f} MiB, over the "
+                         f"limit of {limit / 2**20:.0f} MiB", f"{valid} of at most "
+                         f"{limit / 2**20:.0f} MiB")
+    try:
+        with open(path, "rb") as handle:
+            data = handle.read(limit + 1)
+    except OSError as exc:
+        raise InputError(Where(source), f"cannot read {what}: {exc.strerror}", valid) from None
+    if len(data) > limit:
+        raise InputError(Where(source), f"{what} grew beyond {limit / 2**20:.0f} MiB while being "
+                         "read", f"{valid} of at most {limit / 2**20:.0f} MiB")
+    return data
 
 
 # --------------------------------------------------------------------------------------------
@@ -156,7 +238,10 @@ def split_quantity(value: Any) -> tuple[float, str] | None:
     if isinstance(value, bool):
         return None
     if isinstance(value, (int, float)):
-        return float(value), ""
+        try:
+            return float(value), ""
+        except OverflowError:  # an integer beyond float64: as out of range as inf
+            return math.copysign(math.inf, value), ""
     if isinstance(value, str):
         match = _NUMBER_UNIT.match(value)
         if match:

@@ -228,15 +228,16 @@ def test_spectrum_file_source_is_read_beside_the_scanner_and_filtered(disc_files
 def test_scan_too_large_for_memory_is_refused(disc_files, tmp_path, capsys, monkeypatch):
     # A scan whose estimated memory exceeds what the machine has ends with one line and
     # exit code 2 rather than being killed half way (the machine is made to look small).
-    import simbench.execute.scan as scan_module
+    import simbench.budget as budget_module
 
-    monkeypatch.setattr(scan_module, "available_memory_bytes", lambda: 100_000)
+    monkeypatch.delenv("SIMBENCH_MEMORY_BUDGET", raising=False)
+    monkeypatch.setattr(budget_module, "available_memory_bytes", lambda: 100_000)
     phantom, _ = disc_files
     scanner = tmp_path / "mono.yaml"
     scanner.write_text(MONO_SCANNER)
     assert _scan(phantom, scanner, tmp_path / "out") == 2
     line = _error_line(capsys)
-    assert "GiB" in line and "fewer rows or columns" in line
+    assert "KiB" in line and "fewer rows or columns" in line and "budget" in line
     assert not (tmp_path / "out" / "scan.json").exists()
 
 

@@ -10,9 +10,11 @@ The folder follows ARCHITECTURE.md's run layout::
       measured/dark.npy          dark frame (averaged over its readings)
       measured/projections.npy   ln((flat - dark) / (counts - dark)), starvation floor applied
       scan.json                  every setting: phantom, geometry, physics, seed, versions
+      complete.json              written last: size and SHA-256 of every other file
 
-Every file is written atomically and ``scan.json`` last, so a folder with ``scan.json`` is
-complete.
+The folder is whole or absent: it is built beside its final place and committed by a rename
+(:mod:`simbench.folders`), and readers refuse a folder whose ``complete.json`` is missing or
+does not match (:func:`simbench.folders.verify_folder`).
 """
 
 from __future__ import annotations
@@ -59,31 +61,39 @@ def views_per_block(poses) -> int:
     return max(1, READINGS_PER_BLOCK // (poses.n_rows * poses.n_cols))
 
 
-def available_memory_bytes() -> int | None:
-    """Memory the system can give this process now (``MemAvailable``), or None if unknown."""
-    try:
-        with open("/proc/meminfo", encoding="ascii") as handle:
-            for line in handle:
-                if line.startswith("MemAvailable:"):
-                    return int(line.split()[1]) * 1024
-    except OSError:
-        pass
-    return None
+def check_scan_cost(poses, n_sub: int, n_materials: int, n_out: int, step: int,
+                    source: str, out: Path) -> None:
+    """Refuse, with one line, a scan whose block would not fit the memory budget or whose
+    outputs would not fit on the disk, before anything is traced.
 
-
-def check_scan_memory(n_rays: int, n_sub: int, n_materials: int, source: str) -> None:
-    """Refuse, with one line, a block of a scan that would not fit in memory.
-
-    The estimate, measured on the shipped scanners, is 8 bytes per material and sub-ray for
-    the path lengths plus about 160 bytes per detector reading for the measurement chain.
+    The memory estimate, measured on the shipped scanners, is 8 bytes per material and sub-ray
+    for the path lengths plus about 160 bytes per detector reading for the measurement chain.
+    The outputs are float32 counts and projections per energy bin and float64 path lengths and
+    line integrals; the folder is built beside an existing one before replacing it, so both
+    must fit.
     """
-    need = n_rays * (8 * n_materials * n_sub + 160)
-    have = available_memory_bytes()
-    if have is not None and need > 0.8 * have:
-        raise InputError(Where(source, field="geometry"),
-                         f"one block of this scan needs about {need / 2**30:.1f} GiB of memory "
-                         f"and {have / 2**30:.1f} GiB are available",
-                         "fewer rows or columns, or fewer focal-spot and aperture samples")
+    import shutil
+
+    from simbench.budget import check_bytes, format_bytes
+
+    cells = poses.n_rows * poses.n_cols
+    where = Where(source, field="geometry")
+    check_bytes(float(min(step, poses.n_views)) * cells * (8.0 * n_materials * n_sub + 160.0),
+                where, f"one block of this scan ({min(step, poses.n_views)} views of {cells} "
+                f"cells, {n_sub} sub-rays, {n_materials} materials)",
+                "fewer rows or columns, or fewer focal-spot and aperture samples")
+    output_bytes = float(poses.n_views) * cells * (8.0 * n_out + 8.0 * (n_materials + 1))
+    probe = out.parent
+    while not probe.exists() and probe != probe.parent:
+        probe = probe.parent
+    try:
+        free = shutil.disk_usage(probe).free
+    except OSError:
+        return
+    if output_bytes > free:
+        raise InputError(where, f"the scan's outputs would need about {format_bytes(output_bytes)} "
+                         f"of disk and '{probe}' has {format_bytes(free)} free",
+                         "fewer views, rows or columns, or an output folder on a larger disk")
 
 
 def scan_identity(phantom, scanner, realization: int = 0) -> tuple:
@@ -102,7 +112,8 @@ def run_scan(phantom, scanner, out: Path, *, seed: int = 0, noise: bool = True,
     scanner : simbench.scanner.Scanner
         Must have a physics section.
     out : Path
-        Output folder (created).
+        Output folder, committed whole (:func:`simbench.folders.commit_folder`): after any
+        interruption it holds the complete old scan or the complete new one.
     seed : int
         Root seed; block b's stream is ``rng_for(seed, *scan_identity(...), "views", v0)``
         with v0 its first view.
@@ -128,131 +139,210 @@ def run_scan(phantom, scanner, out: Path, *, seed: int = 0, noise: bool = True,
     The scan streams through memory in blocks of views: each block is traced, measured and
     written into memory-mapped outputs, so memory stays near one block's worth whatever the
     number of views. The flat and dark frames are those of the first block; the detector
-    lag carries over from block to block. The outputs are renamed into place only when
-    every block is done, and ``scan.json`` is written last.
+    lag carries over from block to block. Every block is checked finite before it is
+    written. The folder is built beside ``out`` and committed by a rename when every file,
+    ``scan.json`` and the marker ``complete.json`` (written last) are done.
     """
-    import contextlib
-
-    from simbench.atomic import atomic_path, write_json
-    from simbench.geometry import cell_subsamples, focal_spot_points
-    from simbench.materials import mu_table
-    from simbench.measure import describe, measure, rng_for
-    from simbench.trace import line_integrals, trace
+    from simbench.folders import commit_folder
 
     if seed < 0:
         raise InputError(Where("<command line>", field="--seed"), f"seed must be >= 0, got {seed}",
                          "a non-negative integer")
-    if out.exists() and not out.is_dir():
-        raise InputError(Where("<command line>", field="-o"), f"'{out}' exists and is not a folder",
-                         "a folder path")
-    physics = scanner.physics
-    poses = scanner.geometry.poses()
-    src = physics.source
-    spot = cells = None
-    if not poses.parallel and (src.focal_spot_samples[0] * src.focal_spot_samples[1] > 1):
-        spot = focal_spot_points(src.focal_spot_mm[0], src.focal_spot_mm[1],
-                                 src.focal_spot_samples[0], src.focal_spot_samples[1])
-    n_u, n_v = physics.detector.aperture_samples
-    if poses.dimension == 2:
-        n_v = 1  # a 2-D scanner's rays stay in its plane
-    if n_u * n_v > 1:
-        cells = cell_subsamples(n_u, n_v, poses.pitch_u_mm, poses.pitch_v_mm)
-    subrays = spot is not None or cells is not None
-    n_sub = (1 if spot is None else len(spot)) * (1 if cells is None else len(cells))
-    step = block_views or views_per_block(poses)
-    n_mat = len(phantom.materials)
-    check_scan_memory(min(step, poses.n_views) * poses.n_rows * poses.n_cols, n_sub, n_mat,
-                      str(scanner.source))
-    spectrum = scanner.spectrum()
-    identity = scan_identity(phantom, scanner, realization)
-    n_out = physics.detector.n_bins
-    lag_state = np.full((n_out, poses.n_rows * poses.n_cols), np.nan)
-    shape = poses.projection_shape
-    edges = np.zeros((n_mat, poses.n_views, 2))
-    calibration = metadata = mu_ref = reference_kev = None
-    starved = 0
-    timings = {"trace": 0.0, "measure": 0.0}
-    out.mkdir(parents=True, exist_ok=True)
-    with contextlib.ExitStack() as stack:
-        files: dict = {}
+    plan = _ScanPlan(phantom, scanner, out, block_views)
+    with commit_folder(out, "scan") as staging:
+        state = _ScanState(plan, seed=seed, noise=noise,
+                           identity=scan_identity(phantom, scanner, realization),
+                           reference_energy_kev=reference_energy_kev)
+        with _ScanOutputs(staging, plan) as outputs:
+            for views in plan.blocks():
+                _scan_block(plan, state, views, outputs)
+            outputs.write_frames(state.calibration)
+        warn_if_truncated(state.edges, scanner.source)
+        record = _scan_record(plan, state)
+        from simbench.atomic import write_json
 
-        def output(name: str, folder: str, dtype, full_shape) -> np.ndarray:
-            if name not in files:
-                tmp = stack.enter_context(atomic_path(out / folder / f"{name}.npy", ".npy"))
-                files[name] = np.lib.format.open_memmap(tmp, mode="w+", dtype=dtype,
-                                                        shape=tuple(full_shape))
-            return files[name]
+        write_json(staging / "scan.json", record)
+    return (f"wrote {out}/ (measured/counts, flat, dark, projections; truth/line_integrals at "
+            f"{state.reference_kev:.1f} keV; scan.json; complete.json) — projections "
+            f"{tuple(plan.shape)}, starved readings {state.starved}, trace "
+            f"{state.timings['trace']:.2f} s, physics {state.timings['measure']:.2f} s")
 
-        for v0 in range(0, poses.n_views, step):
-            views = np.arange(v0, min(poses.n_views, v0 + step))
-            started = time.perf_counter()
-            lengths = trace(phantom, poses, cell_samples=cells, spot_samples=spot, views=views)
-            timings["trace"] += time.perf_counter() - started
-            centre = lengths.mean(axis=-1) if subrays else lengths
-            edges[:, views] = edge_columns(centre)
-            started = time.perf_counter()
-            result = measure(lengths, phantom.materials, physics, poses=poses.select(views),
-                             subrays=subrays, spectrum=spectrum,
-                             rng=rng_for(seed, *identity, "views", int(v0)), noise=noise,
-                             calibration=calibration, lag_state=lag_state, dtype=np.float64)
-            timings["measure"] += time.perf_counter() - started
-            if calibration is None:
-                # kept in float64: later blocks normalise with exactly the first one's frames
-                calibration = (result.flat, result.dark)
-                metadata = result.metadata
-                if reference_energy_kev is None:
-                    reference_energy_kev = (
-                        src.energy_kev if src.kind == "monochromatic"
-                        else round(float(metadata["mean_detected_energy_kev"]), 1))
-                reference_kev = float(reference_energy_kev)
-                mu_ref = mu_table(phantom.materials, [reference_kev])[:, 0]
-            starved += int(result.metadata["starvation"]["starved_cells"])
-            view_axis = 0 if result.counts.ndim == len(shape) else 1
-            for name in ("counts", "projections"):
-                block = np.asarray(getattr(result, name))
-                full = list(block.shape)
-                full[view_axis] = poses.n_views
-                target = output(name, "measured", np.float32, full)  # ARCHITECTURE dtypes
-                target[(slice(None),) * view_axis + (views,)] = block
-            output("path_lengths", "truth", np.float64, (n_mat,) + shape)[:, views] = centre
-            output("line_integrals", "truth", np.float64, shape)[views] = \
-                line_integrals(centre, mu_ref)
-        for array in files.values():
+
+# ------------------------------------------------------------------------------------------
+# The stages of a scan
+# ------------------------------------------------------------------------------------------
+
+
+class _ScanPlan:
+    """What a scan will do, fixed before any work: poses, sub-rays, blocks, cost checked."""
+
+    def __init__(self, phantom, scanner, out: Path, block_views: int | None):
+        from simbench.geometry import cell_subsamples, focal_spot_points
+
+        self.phantom, self.scanner = phantom, scanner
+        if out.exists() and not out.is_dir():
+            raise InputError(Where("<command line>", field="-o"),
+                             f"'{out}' exists and is not a folder", "a folder path")
+        physics = self.physics = scanner.physics
+        poses = self.poses = scanner.geometry.poses()
+        src = physics.source
+        self.spot = self.cells = None
+        if not poses.parallel and (src.focal_spot_samples[0] * src.focal_spot_samples[1] > 1):
+            self.spot = focal_spot_points(src.focal_spot_mm[0], src.focal_spot_mm[1],
+                                          src.focal_spot_samples[0], src.focal_spot_samples[1])
+        n_u, n_v = physics.detector.aperture_samples
+        if poses.dimension == 2:
+            n_v = 1  # a 2-D scanner's rays stay in its plane
+        if n_u * n_v > 1:
+            self.cells = cell_subsamples(n_u, n_v, poses.pitch_u_mm, poses.pitch_v_mm)
+        self.subrays = self.spot is not None or self.cells is not None
+        n_sub = (1 if self.spot is None else len(self.spot)) * \
+            (1 if self.cells is None else len(self.cells))
+        self.step = block_views or views_per_block(poses)
+        self.n_materials = len(phantom.materials)
+        self.n_out = physics.detector.n_bins
+        self.shape = poses.projection_shape
+        check_scan_cost(poses, n_sub, self.n_materials, self.n_out, self.step,
+                        str(scanner.source), out)
+        self.spectrum = scanner.spectrum()
+
+    def blocks(self):
+        for v0 in range(0, self.poses.n_views, self.step):
+            yield np.arange(v0, min(self.poses.n_views, v0 + self.step))
+
+
+class _ScanState:
+    """What carries over from block to block: frames, lag, truth energy, counts, timings."""
+
+    def __init__(self, plan: _ScanPlan, *, seed: int, noise: bool, identity: tuple,
+                 reference_energy_kev: float | None):
+        self.seed, self.noise, self.identity = seed, noise, identity
+        self.reference_kev = None if reference_energy_kev is None else float(reference_energy_kev)
+        cells = plan.poses.n_rows * plan.poses.n_cols
+        self.lag_state = np.full((plan.n_out, cells), np.nan)
+        self.edges = np.zeros((plan.n_materials, plan.poses.n_views, 2))
+        self.calibration = self.metadata = self.mu_ref = None
+        self.starved = 0
+        self.timings = {"trace": 0.0, "measure": 0.0}
+
+
+class _ScanOutputs:
+    """The scan's arrays, memory-mapped in the staging folder and filled block by block."""
+
+    def __init__(self, staging: Path, plan: _ScanPlan):
+        self.staging, self.plan, self.files = staging, plan, {}
+
+    def __enter__(self) -> "_ScanOutputs":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        for array in self.files.values():
             array.flush()
-        files.clear()
-        for name in ("flat", "dark"):
-            tmp = stack.enter_context(atomic_path(out / "measured" / f"{name}.npy", ".npy"))
-            frame = np.asarray(calibration[0 if name == "flat" else 1], dtype=np.float32)
-            np.save(tmp, frame, allow_pickle=False)
-    warn_if_truncated(edges, scanner.source)
+        self.files.clear()
 
-    readings = int(np.prod(shape)) * n_out
-    metadata["starvation"] = dict(metadata["starvation"], starved_cells=starved,
-                                  starved_fraction=starved / readings)
-    metadata["blocks"] = {"views_per_block": int(step),
-                          "count": -(-poses.n_views // step),
+    def array(self, name: str, folder: str, dtype, shape) -> np.ndarray:
+        if name not in self.files:
+            path = self.staging / folder / f"{name}.npy"
+            path.parent.mkdir(parents=True, exist_ok=True)
+            self.files[name] = np.lib.format.open_memmap(path, mode="w+", dtype=dtype,
+                                                         shape=tuple(shape))
+        return self.files[name]
+
+    def write_frames(self, calibration) -> None:
+        for name, frame in (("flat", calibration[0]), ("dark", calibration[1])):
+            path = self.staging / "measured" / f"{name}.npy"
+            np.save(path, np.asarray(frame, dtype=np.float32), allow_pickle=False)
+
+
+def _scan_block(plan: _ScanPlan, state: _ScanState, views: np.ndarray,
+                outputs: _ScanOutputs) -> None:
+    """Trace, measure, check and write one block of views."""
+    from simbench.materials import mu_table
+    from simbench.measure import measure, rng_for
+    from simbench.trace import line_integrals, trace
+
+    started = time.perf_counter()
+    lengths = trace(plan.phantom, plan.poses, cell_samples=plan.cells, spot_samples=plan.spot,
+                    views=views)
+    state.timings["trace"] += time.perf_counter() - started
+    centre = lengths.mean(axis=-1) if plan.subrays else lengths
+    state.edges[:, views] = edge_columns(centre)
+    started = time.perf_counter()
+    result = measure(lengths, plan.phantom.materials, plan.physics,
+                     poses=plan.poses.select(views), subrays=plan.subrays,
+                     spectrum=plan.spectrum,
+                     rng=rng_for(state.seed, *state.identity, "views", int(views[0])),
+                     noise=state.noise, calibration=state.calibration,
+                     lag_state=state.lag_state, dtype=np.float64)
+    state.timings["measure"] += time.perf_counter() - started
+    if state.calibration is None:
+        # kept in float64: later blocks normalise with exactly the first one's frames
+        state.calibration = (result.flat, result.dark)
+        state.metadata = result.metadata
+        if state.reference_kev is None:
+            src = plan.physics.source
+            state.reference_kev = float(
+                src.energy_kev if src.kind == "monochromatic"
+                else round(float(state.metadata["mean_detected_energy_kev"]), 1))
+        state.mu_ref = mu_table(plan.phantom.materials, [state.reference_kev])[:, 0]
+        _check_finite(state.calibration[0], "flat", plan.scanner.source, "exposure", views)
+        _check_finite(state.calibration[1], "dark", plan.scanner.source, "detector", views)
+    state.starved += int(result.metadata["starvation"]["starved_cells"])
+    truth = line_integrals(centre, state.mu_ref)
+    _check_finite(centre, "path lengths", plan.phantom.source, "objects", views)
+    _check_finite(truth, "line integrals", plan.phantom.source, "materials", views)
+    view_axis = 0 if result.counts.ndim == len(plan.shape) else 1
+    for name in ("counts", "projections"):
+        block = np.asarray(getattr(result, name))
+        _check_finite(block, name, plan.scanner.source, "exposure", views)
+        full = list(block.shape)
+        full[view_axis] = plan.poses.n_views
+        target = outputs.array(name, "measured", np.float32, full)  # ARCHITECTURE dtypes
+        block32 = block.astype(np.float32)
+        _check_finite(block32, f"{name} (in float32)", plan.scanner.source, "exposure", views)
+        target[(slice(None),) * view_axis + (views,)] = block32
+    outputs.array("path_lengths", "truth", np.float64,
+                  (plan.n_materials,) + plan.shape)[:, views] = centre
+    outputs.array("line_integrals", "truth", np.float64, plan.shape)[views] = truth
+
+
+def _check_finite(values: np.ndarray, what: str, source, field: str, views: np.ndarray) -> None:
+    """Refuse to write a non-finite result; name the input section that caused it."""
+    if not np.isfinite(values).all():
+        raise InputError(Where(str(source), field=field),
+                         f"the scan's {what} are not finite in views {int(views[0])} to "
+                         f"{int(views[-1])}; nothing was written",
+                         "physically sensible values (see docs/physics.md for each field's range)")
+
+
+def _scan_record(plan: _ScanPlan, state: _ScanState) -> dict:
+    """Everything ``scan.json`` says: settings, geometry, physics, truth, seeds, timings."""
+    from simbench.measure import describe
+
+    phantom, scanner = plan.phantom, plan.scanner
+    readings = int(np.prod(plan.shape)) * plan.n_out
+    metadata = dict(state.metadata)
+    metadata["starvation"] = dict(metadata["starvation"], starved_cells=state.starved,
+                                  starved_fraction=state.starved / readings)
+    metadata["blocks"] = {"views_per_block": int(plan.step),
+                          "count": -(-plan.poses.n_views // plan.step),
                           "note": "flat and dark from the first block; lag carried over"}
-    record = {
+    return {
         "phantom": {"name": phantom.name, "file": str(phantom.source),
                     "materials": [m.name for m in phantom.materials]},
         "scanner": {"name": scanner.name, "file": str(scanner.source)},
-        "geometry": poses.to_record(),
-        "physics": describe(physics),
+        "geometry": plan.poses.to_record(),
+        "physics": describe(plan.physics),
         "measurement": metadata,
-        "truth": {"reference_energy_kev": reference_kev,
-                  "mu_per_mm": {m.name: float(v) for m, v in zip(phantom.materials, mu_ref)},
-                  "path_lengths": "averaged over the focal-spot and aperture sub-rays" if subrays else
-                  "through the cell centre"},
-        "seed": {"root_seed": int(seed), "identity": list(identity),
+        "truth": {"reference_energy_kev": state.reference_kev,
+                  "mu_per_mm": {m.name: float(v) for m, v in zip(phantom.materials, state.mu_ref)},
+                  "path_lengths": "averaged over the focal-spot and aperture sub-rays"
+                  if plan.subrays else "through the cell centre"},
+        "seed": {"root_seed": int(state.seed), "identity": list(state.identity),
                  "block_stream": "rng_for(root_seed, *identity, 'views', first view of the block)",
-                 "noise": bool(noise)},
-        "layout": "(n_views, n_cols)" if poses.dimension == 2 else "(n_views, n_rows, n_cols)",
-        "timings_s": {k: round(v, 3) for k, v in timings.items()},
+                 "noise": bool(state.noise)},
+        "layout": "(n_views, n_cols)" if plan.poses.dimension == 2 else "(n_views, n_rows, n_cols)",
+        "timings_s": {k: round(v, 3) for k, v in state.timings.items()},
         "simbench_version": simbench.__version__,
         "caution": simbench.CAUTION,
     }
-    write_json(out / "scan.json", record)
-    return (f"wrote {out}/ (measured/counts, flat, dark, projections; truth/line_integrals at "
-            f"{reference_kev:.1f} keV; scan.json) — projections {tuple(shape)}, starved "
-            f"readings {starved}, trace {timings['trace']:.2f} s, physics "
-            f"{timings['measure']:.2f} s")
