@@ -146,6 +146,12 @@ def cmd_draw(args: argparse.Namespace) -> int:
     out = _check_output(args.output, ".png")
     energy = _energy_option(args.energy)
     pixels = _pixels_option(args.pixels)
+    from simbench.budget import check_bytes
+
+    # the truth image and label map in float64, and the figure's RGBA canvas (about 2x wider
+    # than the image with labels and colour bar), measured on the shipped phantoms
+    check_bytes(64.0 * pixels * pixels, Where("<command line>", field="--pixels"),
+                f"a {pixels} x {pixels} drawing", "fewer pixels")
     phantom = load_phantom(resolve(args.phantom, "phantoms"))
     draw_phantom(phantom, out, energy_kev=energy, pixels=pixels)
     print(f"wrote {out} ({phantom.name}, mu at {energy:g} keV)")

@@ -50,6 +50,7 @@ import time
 from pathlib import Path
 from typing import Callable, Iterator
 
+from simbench.atomic import output_error
 from simbench.errors import InputError, Where
 
 #: the marker file, written last; its presence with matching checksums makes a folder complete
@@ -106,8 +107,7 @@ def commit_folder(final: str | Path, kind: str, *, say: Callable[[str], None] = 
     try:
         parent.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise InputError(where, f"cannot create the folder '{parent}': {_reason(exc)}",
-                         "a path in a writable folder") from None
+        raise output_error(final, exc) from None
     with _locked(final, where):
         _clean_stale(final, say)
         _check_replaceable(final, kind, where)
@@ -115,8 +115,7 @@ def commit_folder(final: str | Path, kind: str, *, say: Callable[[str], None] = 
         try:
             staging.mkdir()
         except OSError as exc:
-            raise InputError(where, f"cannot write in '{parent}': {_reason(exc)}",
-                             "a path in a writable folder") from None
+            raise output_error(final, exc) from None
         try:
             yield staging
             write_marker(staging, kind)
@@ -189,8 +188,7 @@ def _locked(final: Path, where: Where) -> Iterator[None]:
         try:
             fd = os.open(lock_path, os.O_RDWR | os.O_CREAT, 0o644)
         except OSError as exc:
-            raise InputError(where, f"cannot write in '{final.parent}': {_reason(exc)}",
-                             "a path in a writable folder") from None
+            raise output_error(final, exc) from None
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except OSError:
@@ -358,5 +356,3 @@ def _fsync_dir(path: Path) -> None:
             os.close(fd)
 
 
-def _reason(exc: OSError) -> str:
-    return exc.strerror or type(exc).__name__

@@ -4,12 +4,14 @@ A scanner file has the top-level keys ``name``, ``description`` (optional), ``un
 bare-number lengths, ``mm`` or ``cm``, default mm), ``geometry`` (see docs/geometry.md) and the
 physics sections ``source``, ``exposure``, ``detector`` and ``scatter`` (optional; the tracer
 needs only the geometry). Each section is read by the module that owns the concern; this module
-only dispatches, so the file format has one reader per section.
+only dispatches, so the file format has one reader per section. Once both the geometry and the
+physics are read, the checks that need both (and the source spectrum) run:
+:func:`simbench.measure.config.check_beam`.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -42,28 +44,45 @@ class Scanner:
     geometry: Any
     physics: Any
     source: str
+    _spectrum: list = field(default_factory=list, repr=False, compare=False)
 
-    def spectrum(self):
+    def spectrum(self, filtration_where: Where | None = None):
         """The source spectrum (:class:`simbench.materials.spectra.Spectrum`), filtration applied.
 
-        A ``spectrum_file`` is read relative to the scanner file. Raises InputError when the
-        scanner has no source section.
+        A ``spectrum_file`` is read relative to the scanner file. The spectrum is made once
+        and kept (it is immutable).
+
+        Parameters
+        ----------
+        filtration_where : Where, optional
+            Place of the ``source.filtration`` field, named if the filtration lets (almost)
+            no photons through.
+
+        Raises
+        ------
+        InputError
+            The scanner has no source section; the spectrum file is missing or bad; the
+            filtration passes less than
+            :data:`simbench.measure.config.MIN_FILTER_TRANSMISSION` of the photons.
         """
-        from simbench.materials import spectra
+        if self._spectrum:
+            return self._spectrum[0]
         from simbench.materials.spectrum_file import load_spectrum
 
         if self.physics is None:
             raise InputError(Where(str(self.source), field="source"),
                              "the scanner file has no source section",
                              "add a source section (energy, kvp or spectrum_file)")
-        from simbench.measure import source_spectrum
+        from simbench.measure import filter_spectrum, source_spectrum
 
         src = self.physics.source
+        where = filtration_where or Where(str(self.source), field="source.filtration")
         if src.kind != "file":
-            return source_spectrum(src)
-        spectrum = load_spectrum(self.spectrum_file_path())
-        for material, thickness_mm in src.filtration:
-            spectrum = spectra.filtered(spectrum, material, thickness_mm)
+            spectrum = source_spectrum(src)
+        else:
+            spectrum = filter_spectrum(load_spectrum(self.spectrum_file_path()), src.filtration,
+                                       where)
+        self._spectrum.append(spectrum)
         return spectrum
 
     def spectrum_file_path(self) -> Path:
@@ -111,4 +130,10 @@ def _read(document: Any, source: str) -> Scanner:
             if root.has(key):
                 raise root.error(key, f"'{key}' given without a 'source' section",
                                  "add a source section (energy or kvp) or remove this one")
-    return Scanner(name, description, geometry, physics, source)
+    scanner = Scanner(name, description, geometry, physics, source)
+    if physics is not None:
+        from simbench.measure.config import check_beam
+
+        spectrum = scanner.spectrum(root.section("source").at("filtration"))
+        check_beam(physics, root, geometry, spectrum)
+    return scanner

@@ -107,7 +107,7 @@ def test_a_folder_of_another_kind_or_of_the_user_is_never_replaced(tmp_path):
     a_file.write_text("x")
     with pytest.raises(InputError, match="not a folder"):
         _write(a_file, 1)
-    with pytest.raises(InputError, match="cannot create"):
+    with pytest.raises(InputError, match="is a file, not a folder"):
         _write(a_file / "under-a-file", 1)
 
 

@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 import xraylib
 
+from simbench.errors import InputError
 from simbench.materials import (
     MaterialSpec,
     VALID_ENERGY_RANGE_KEV,
@@ -239,11 +240,12 @@ def test_mu_table_cache_returns_fresh_arrays():
     assert np.all(second > 0)
 
 
-@pytest.mark.parametrize("energy", [0.5, 900.0, float("nan"), -10.0])
+@pytest.mark.parametrize("energy", [0.5, 900.0, 1e6, float("nan"), -10.0])
 def test_energy_outside_tables(energy):
     lo, hi = VALID_ENERGY_RANGE_KEV
-    with pytest.raises(ValueError, match=f"valid: {lo:g} to {hi:g} keV"):
+    with pytest.raises(InputError, match=f"valid: an energy from {lo:g} to {hi:g} keV") as info:
         mu_table([get_material("water")], [60.0, energy])
+    assert "\n" not in str(info.value)
 
 
 # --------------------------------------------------------------------------------------------

@@ -1,6 +1,7 @@
 """Materials: the catalogue, custom materials, attenuation mu(E) and X-ray spectra."""
 
 from simbench.materials.attenuation import (
+    MAX_MU_PER_MM,
     VALID_ENERGY_RANGE_KEV,
     mass_attenuation_cm2_g,
     mass_energy_absorption_cm2_g,
@@ -32,6 +33,7 @@ from simbench.materials.spectrum_file import load_spectrum
 
 __all__ = [
     "KVP_RANGE",
+    "MAX_MU_PER_MM",
     "MaterialSpec",
     "Spectrum",
     "air_kerma_ugy",

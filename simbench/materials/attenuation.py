@@ -9,6 +9,11 @@ xraylib's photoelectric cross sections, fluorescence yields and line energies an
 Klein-Nishina energy-transfer fraction (see :func:`mass_energy_absorption_cm2_g`): xraylib's own
 ``CS_Energy`` departs from the Hubbell & Seltzer table by up to 30 % between 15 and 60 keV
 (an open xraylib issue), which would bias air-kerma weighted half-value layers.
+
+Energies outside :data:`VALID_ENERGY_RANGE_KEV` and attenuation coefficients no real material
+has (non-finite, or above :data:`MAX_MU_PER_MM`) are refused with a one-line
+:class:`~simbench.errors.InputError`; the functions take a ``where`` so that callers can name
+the field the energies came from.
 """
 
 from __future__ import annotations
@@ -24,27 +29,54 @@ import numpy as np
 import xraylib
 import xraylib_np
 
+from simbench.errors import InputError, Where
 from simbench.materials.catalogue import element_symbol_to_z
 from simbench.materials.spec import MaterialSpec
 
 #: Energies (keV) where both xraylib tables used here are defined.
 VALID_ENERGY_RANGE_KEV = (1.0, 800.0)
+#: Largest linear attenuation coefficient any material can have, 1/mm: the densest elements
+#: reach about 1.4e4 /mm at 1 keV (xraylib CS_Total times the element density, e.g.
+#: plutonium 7.2e3 cm^2/g x 19.8 g/cm^3), and no compound is denser than osmium (22.6 g/cm^3)
+MAX_MU_PER_MM = 1.0e5
 
 _CACHE_SIZE = 32
 _mu_cache: "OrderedDict[tuple, np.ndarray]" = OrderedDict()
 _mu_cache_lock = threading.Lock()
 
 
-def _energies(energies_kev) -> np.ndarray:
+def _place(where: "Where | str | None", field: str) -> Where:
+    """The caller's place, or a generic one naming ``field``."""
+    if where is None:
+        return Where("<input>", field=field)
+    return Where(where) if isinstance(where, str) else where
+
+
+def _energies(energies_kev, where: "Where | str | None" = None) -> np.ndarray:
     e = np.atleast_1d(np.asarray(energies_kev, dtype=np.float64))
     if e.ndim != 1:
         raise ValueError(f"energies must be a 1-D array in keV, got shape {e.shape}")
     lo, hi = VALID_ENERGY_RANGE_KEV
     bad = ~np.isfinite(e) | (e < lo) | (e > hi)
     if bad.any():
-        raise ValueError(f"energy {e[bad][0]:g} keV is outside the attenuation tables "
-                         f"(valid: {lo:g} to {hi:g} keV)")
+        raise InputError(_place(where, "energy"),
+                         f"energy {e[bad][0]:g} keV is outside the attenuation tables",
+                         f"an energy from {lo:g} to {hi:g} keV")
     return e
+
+
+def _check_mu(spec: MaterialSpec, mu: np.ndarray, energies: np.ndarray) -> None:
+    """Refuse attenuation no real material has: non-finite, or above MAX_MU_PER_MM."""
+    bad = ~(np.abs(mu) <= MAX_MU_PER_MM)
+    if bad.any():
+        i = int(np.argmax(bad))
+        density = (f" (density {spec.density_g_cm3:g} g/cm^3)" if spec.kind != "mu" else "")
+        raise InputError(Where("<input>", field=f"materials.{spec.name}"),
+                         f"material '{spec.name}' would attenuate {mu[i]:g} /mm at "
+                         f"{energies[min(i, energies.size - 1)]:g} keV{density}, more than any "
+                         "real material",
+                         f"at most {MAX_MU_PER_MM:g} /mm; no material is denser than "
+                         "osmium, 22.6 g/cm^3")
 
 
 def _composition(spec: MaterialSpec) -> tuple[np.ndarray, np.ndarray]:
@@ -65,7 +97,8 @@ def _mass_coefficient(spec: MaterialSpec, energies: np.ndarray, table) -> np.nda
     return w @ per_element
 
 
-def mass_attenuation_cm2_g(spec: MaterialSpec, energies_kev) -> np.ndarray:
+def mass_attenuation_cm2_g(spec: MaterialSpec, energies_kev, *,
+                           where: "Where | str | None" = None) -> np.ndarray:
     """Mass attenuation coefficient mu/rho of a material, cm^2/g.
 
     Parameters
@@ -74,6 +107,13 @@ def mass_attenuation_cm2_g(spec: MaterialSpec, energies_kev) -> np.ndarray:
         A material with a composition (catalogue or custom).
     energies_kev : array_like, shape (E,)
         Photon energies, keV, within :data:`VALID_ENERGY_RANGE_KEV`.
+    where : Where or str, optional
+        Place of the field the energies came from, named in the error.
+
+    Raises
+    ------
+    InputError
+        An energy outside :data:`VALID_ENERGY_RANGE_KEV` (one line naming ``where``).
 
     Returns
     -------
@@ -92,7 +132,7 @@ def mass_attenuation_cm2_g(spec: MaterialSpec, energies_kev) -> np.ndarray:
     Schoonjans T et al., The xraylib library for X-ray-matter interactions. Recent
     developments, Spectrochim. Acta B 66 (2011) 776-784.
     """
-    return _mass_coefficient(spec, _energies(energies_kev), xraylib_np.CS_Total)
+    return _mass_coefficient(spec, _energies(energies_kev, where), xraylib_np.CS_Total)
 
 
 ELECTRON_REST_ENERGY_KEV = 510.99895  # CODATA 2018
@@ -168,7 +208,8 @@ def _element_energy_absorption(z: np.ndarray, energies: np.ndarray) -> np.ndarra
     return tau + compton_tr - fluorescence / energies[None, :]
 
 
-def mass_energy_absorption_cm2_g(spec: MaterialSpec, energies_kev) -> np.ndarray:
+def mass_energy_absorption_cm2_g(spec: MaterialSpec, energies_kev, *,
+                                 where: "Where | str | None" = None) -> np.ndarray:
     """Mass energy-absorption coefficient mu_en/rho of a material, cm^2/g.
 
     Parameters
@@ -177,6 +218,13 @@ def mass_energy_absorption_cm2_g(spec: MaterialSpec, energies_kev) -> np.ndarray
         A material with a composition.
     energies_kev : array_like, shape (E,)
         Photon energies, keV, within :data:`VALID_ENERGY_RANGE_KEV`.
+    where : Where or str, optional
+        Place of the field the energies came from, named in the error.
+
+    Raises
+    ------
+    InputError
+        An energy outside :data:`VALID_ENERGY_RANGE_KEV` (one line naming ``where``).
 
     Returns
     -------
@@ -201,7 +249,7 @@ def mass_energy_absorption_cm2_g(spec: MaterialSpec, energies_kev) -> np.ndarray
     20 MeV, Int. J. Appl. Radiat. Isot. 33 (1982) 1269-1290.
     Hubbell J H and Seltzer S M, NISTIR 5632 (1995).
     """
-    energies = _energies(energies_kev)
+    energies = _energies(energies_kev, where)
     z, w = _composition(spec)
     return w @ _element_energy_absorption(z, energies)
 
@@ -216,11 +264,16 @@ def _compute_mu_table(materials: tuple, energies: np.ndarray) -> np.ndarray:
             raise ValueError(f"material '{spec.name}' has density {spec.density_g_cm3!r} g/cm^3 "
                              "(valid: finite, > 0)")
         # (cm^2/g) * (g/cm^3) = 1/cm; / 10 -> 1/mm
-        out[m] = _mass_coefficient(spec, energies, xraylib_np.CS_Total) * spec.density_g_cm3 / 10.0
+        with np.errstate(over="ignore"):
+            out[m] = (_mass_coefficient(spec, energies, xraylib_np.CS_Total)
+                      * spec.density_g_cm3 / 10.0)
+    for m, spec in enumerate(materials):
+        _check_mu(spec, out[m], energies)
     return out
 
 
-def mu_table(materials: Sequence[MaterialSpec], energies_kev) -> np.ndarray:
+def mu_table(materials: Sequence[MaterialSpec], energies_kev, *,
+             where: "Where | str | None" = None) -> np.ndarray:
     """Linear attenuation coefficients of several materials on an energy grid, 1/mm.
 
     Parameters
@@ -229,6 +282,9 @@ def mu_table(materials: Sequence[MaterialSpec], energies_kev) -> np.ndarray:
         Catalogue, custom or explicit-mu materials.
     energies_kev : array_like, shape (E,)
         Photon energies, keV, within :data:`VALID_ENERGY_RANGE_KEV` (1 to 800 keV).
+    where : Where or str, optional
+        Place of the field the energies came from (e.g. a command-line option), named in the
+        error for an energy outside the tables.
 
     Returns
     -------
@@ -239,8 +295,12 @@ def mu_table(materials: Sequence[MaterialSpec], energies_kev) -> np.ndarray:
 
     Raises
     ------
+    InputError
+        An energy outside the tables (one line naming ``where`` and the valid range); an
+        attenuation coefficient that is not finite or above :data:`MAX_MU_PER_MM` (one line
+        naming the material), e.g. a custom material of absurd density.
     ValueError
-        An energy outside the tables, a non-positive density or an unknown element.
+        A non-positive density or an unknown element.
 
     Notes
     -----
@@ -258,7 +318,7 @@ def mu_table(materials: Sequence[MaterialSpec], energies_kev) -> np.ndarray:
     for spec in specs:
         if not isinstance(spec, MaterialSpec):
             raise TypeError(f"expected MaterialSpec, got {type(spec).__name__}")
-    energies = _energies(energies_kev)
+    energies = _energies(energies_kev, where)
     key = (specs, energies.tobytes())
     with _mu_cache_lock:
         cached = _mu_cache.get(key)
@@ -273,10 +333,11 @@ def mu_table(materials: Sequence[MaterialSpec], energies_kev) -> np.ndarray:
     return cached.copy()
 
 
-def mu_per_mm(material: MaterialSpec, energy_kev: float) -> float:
-    """Linear attenuation coefficient of one material at one energy, 1/mm."""
-    return float(mu_table([material], [energy_kev])[0, 0])
+def mu_per_mm(material: MaterialSpec, energy_kev: float, *,
+              where: "Where | str | None" = None) -> float:
+    """Linear attenuation coefficient of one material at one energy, 1/mm (see :func:`mu_table`)."""
+    return float(mu_table([material], [energy_kev], where=where)[0, 0])
 
 
-__all__ = ["VALID_ENERGY_RANGE_KEV", "klein_nishina_transfer_fraction", "mass_attenuation_cm2_g",
+__all__ = ["MAX_MU_PER_MM", "VALID_ENERGY_RANGE_KEV", "klein_nishina_transfer_fraction", "mass_attenuation_cm2_g",
            "mass_energy_absorption_cm2_g", "mu_table", "mu_per_mm"]

@@ -252,20 +252,32 @@ def effective_energy_kev(spectrum: Spectrum, material: "str | MaterialSpec" = "a
 
     Notes
     -----
-    Solves ``mu(E_eff) = ln 2 / HVL_1`` for ``E_eff`` between 2 keV (above the aluminium K
-    edge, so ``mu`` decreases monotonically) and the top of the attenuation tables. With
-    ``material="water"`` this is the effective energy for water (HVL in water by air kerma).
+    Solves ``mu(E_eff) = ln 2 / HVL_1`` for ``E_eff`` over the attenuation tables (1 to
+    800 keV). Below an absorption edge ``mu`` is not monotonic and the equation may have
+    several roots; the highest is taken (for aluminium above its K edge at 1.56 keV, and for
+    water everywhere, there is only one). With ``material="water"`` this is the effective
+    energy for water (HVL in water by air kerma).
     """
     material = resolve_material(material)
     target = math.log(2.0) / half_value_layer_mm(spectrum, material)
-    lo, hi = 2.0, VALID_ENERGY_RANGE_KEV[1]
+    lo, hi = VALID_ENERGY_RANGE_KEV
+    grid = np.geomspace(lo, hi, 401)
+    grid[0], grid[-1] = lo, hi
+    above = mu_table([material], grid)[0] - target >= 0
+    # ln 2 / HVL lies between the mu of the spectrum's lowest and highest energies, so mu
+    # crosses it on the tables (the last grid interval where it goes from >= to <), or meets
+    # it at an end of the tables (a line at 1 or 800 keV, to rounding)
+    if above[-1]:
+        return hi
+    crossings = np.nonzero(above[:-1] & ~above[1:])[0]
+    if crossings.size == 0:
+        return lo
+    i = int(crossings[-1])
 
     def gap(e):
         return float(mu_table([material], [e])[0, 0]) - target
 
-    if gap(lo) < 0 or gap(hi) > 0:
-        raise ValueError(f"no effective energy in {lo:g}..{hi:g} keV for this spectrum")
-    return brentq(gap, lo, hi, xtol=1e-6)
+    return brentq(gap, grid[i], grid[i + 1], xtol=1e-6)
 
 
 # --------------------------------------------------------------------------------------------

@@ -21,7 +21,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from simbench.errors import InputError, Where
+from simbench.errors import InputError, Where, warn_input
 from simbench.measure.calibration import DEFAULT_FLOOR_COUNTS, log_normalize
 from simbench.measure.config import (
     DetectorConfig,
@@ -29,12 +29,15 @@ from simbench.measure.config import (
     Physics,
     ScatterConfig,
     SourceConfig,
+    check_beam,
     describe,
+    filter_spectrum,
     parse_detector,
     parse_exposure,
     parse_physics,
     parse_scatter,
     parse_source,
+    unfiltered_tube_spectrum,
 )
 from simbench.measure.detector import (
     apply_psf,
@@ -50,13 +53,13 @@ from simbench.measure.noise import (
     rng_for,
     start_standard_normals,
 )
-from simbench.measure.scatter import scatter_signal
+from simbench.measure.scatter import scatter_signal, spr_at_central_cell
 
 __all__ = [
     "DetectorConfig", "ExposureConfig", "Measurement", "Physics", "ScatterConfig",
-    "SourceConfig", "SpectrumArrays", "log_normalize", "measure", "parse_detector",
-    "parse_exposure", "parse_physics", "parse_scatter", "parse_source", "rng_for",
-    "source_spectrum",
+    "SourceConfig", "SpectrumArrays", "check_beam", "detected_air_photons", "filter_spectrum",
+    "log_normalize", "measure", "parse_detector", "parse_exposure", "parse_physics",
+    "parse_scatter", "parse_source", "rng_for", "source_spectrum",
 ]
 
 
@@ -127,9 +130,8 @@ def source_spectrum(source: SourceConfig, spectrum=None, *, need_absolute: bool 
         if source.kind == "monochromatic":
             spectrum = spectra.monochromatic(source.energy_kev)
         else:
-            spectrum = spectra.tube_spectrum(source.kvp, anode_angle_deg=source.anode_angle_deg,
-                                             filtration=tuple(source.filtration),
-                                             bin_kev=source.energy_bin_kev)
+            spectrum = filter_spectrum(unfiltered_tube_spectrum(source), source.filtration,
+                                       Where("scanner", field="source.filtration"))
     if need_absolute and not getattr(spectrum, "absolute", True):
         what = ("a monochromatic source has no tube output per mAs"
                 if source.kind == "monochromatic" else
@@ -160,6 +162,98 @@ def _geometry(path_lengths, poses, pitch_mm, sdd_mm, subrays):
     if pitch_mm is None:
         pitch_mm = (1.0, 1.0)
     return shape, bool(subrays), tuple(float(p) for p in pitch_mm), sdd_mm
+
+
+def detected_air_photons(physics: Physics, energies_kev: np.ndarray, fluence: np.ndarray,
+                         pitch_mm: tuple[float, float], sdd_mm: float | None) -> np.ndarray:
+    """Expected detected photons per cell per view with no object, per energy bin.
+
+    Parameters
+    ----------
+    physics : Physics
+    energies_kev, fluence : float64 (E,)
+        The source spectrum (photons per mm^2 per mAs at 1 m for mAs exposures).
+    pitch_mm : (float, float)
+        Cell pitch along u and v, mm (cell area of mAs exposures).
+    sdd_mm : float or None
+        Source-detector distance, mm (mAs exposures; None for parallel beams).
+
+    Returns
+    -------
+    float64 (E,)
+
+    Raises
+    ------
+    InputError
+        An mAs exposure without a source-detector distance; a sensor that absorbs none of
+        the spectrum.
+
+    Notes
+    -----
+    ``n(E) = fluence(E) (1000 / SDD)^2 A_cell mAs eta(E)`` (mAs exposure, inverse-square law
+    from the tube output at 1 m), or ``fluence(E) eta(E)`` scaled to sum to ``air_counts``;
+    ``eta`` is the sensor's absorbed fraction (:func:`simbench.measure.detector.sensor_efficiency`).
+    """
+    exposure, det = physics.exposure, physics.detector
+    eta = sensor_efficiency(energies_kev, det)
+    absorbed = np.asarray(fluence, dtype=np.float64) * eta
+    if not absorbed.sum() > 0:
+        raise InputError(Where("scanner", field="detector.thickness"),
+                         "the sensor absorbs none of the source's photons",
+                         "a thicker or denser sensor")
+    if exposure.air_counts is not None:
+        return absorbed * (exposure.air_counts / absorbed.sum())
+    if sdd_mm is None:
+        raise InputError(Where("scanner", field="exposure"),
+                         "an mAs exposure needs a source-detector distance, and a parallel "
+                         "beam has none", "give 'air_counts' for a parallel beam")
+    return absorbed * ((1000.0 / sdd_mm) ** 2 * pitch_mm[0] * pitch_mm[1]
+                       * exposure.mas_per_view)
+
+
+def _add_scatter(primary: np.ndarray, air: np.ndarray, config: ScatterConfig,
+                 det: DetectorConfig, pitch: tuple[float, float], cell_axes: tuple[int, ...],
+                 mean_energy_kev: float) -> tuple[np.ndarray, dict]:
+    """Primary plus scatter of every output row, and the scatter record for the metadata.
+
+    The record's ``spr_at_central_cell`` is the quantity the ``centre`` model is asked for:
+    the scatter-to-primary ratio of the expected signals at the central cell (mean of the
+    central one or two cells along u and v), after the anti-scatter grid, averaged over the
+    views measured here.
+    """
+    from simbench.materials import get_material, mu_table
+
+    mu_water = float(mu_table([get_material("water")], [mean_energy_kev])[0, 0])
+    rows = np.ones(primary.shape[0]) if det.photon_counting else np.array([0.0, 1.0, 0.0])
+    air_signal = float(rows @ air)
+    scat, record = scatter_signal(primary, rows, air_signal, config, pitch, cell_axes, mu_water)
+    signal = np.tensordot(rows, primary, axes=1)
+    per_view = spr_at_central_cell(np.tensordot(rows, scat, axes=1), signal, cell_axes)
+    info: dict[str, Any] = {
+        "model": config.model,
+        "spr_at_central_cell": float(per_view.mean()),
+        "spr_at_central_cell_range": [float(per_view.min()), float(per_view.max())],
+        "spr_definition": "scatter-to-primary ratio of the expected signals at the central "
+                          "cell (mean of the central one or two cells along u and v), after "
+                          "the anti-scatter grid, mean over the views",
+        "grid_transmission": config.grid_transmission,
+    }
+    if config.model == "centre":
+        short = record.get("views_short_of_requested_spr", 0)
+        info["spr_at_centre_requested"] = config.spr_at_centre
+        info["views_short_of_requested_spr"] = short
+        if short:
+            warn_input(Where("scanner", field="scatter.spr_at_centre"),
+                       f"a scatter-to-primary ratio of {config.spr_at_centre:g} at the central "
+                       "cell needs more scattered photons than the object removes in some "
+                       "views (a thin object, or one off the central ray); those views get "
+                       "the most the object can scatter (scan.json: measurement.scatter)")
+    else:
+        centre_signal = spr_at_central_cell(signal, np.full_like(signal, air_signal), cell_axes)
+        thickness = -np.log(np.clip(centre_signal, 1e-300, 1.0)) / mu_water
+        info["mu_water_per_mm"] = mu_water
+        info["water_equivalent_thickness_at_central_cell_mm"] = float(thickness.mean())
+    return primary + scat, info
 
 
 def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics: Physics, *,
@@ -250,16 +344,7 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
     if mu.shape != (lengths.shape[0], energies.size):
         raise ValueError(f"mu must be shaped ({lengths.shape[0]}, {energies.size}), got {mu.shape}")
 
-    eta = sensor_efficiency(energies, det)
-    if exposure.air_counts is not None:
-        detected = fluence * eta
-        detected = detected * (exposure.air_counts / detected.sum())
-    else:
-        if sdd is None:
-            raise ValueError("an mAs exposure needs the source-detector distance (divergent "
-                             "poses or sdd_mm); use air_counts for parallel beams")
-        cell_area = pitch[0] * pitch[1]
-        detected = fluence * (1000.0 / sdd) ** 2 * cell_area * exposure.mas_per_view * eta
+    detected = detected_air_photons(physics, energies, fluence, pitch, sdd)
     weights, beam = response_weights(detected, energies, det)
     if det.photon_counting:
         for b, value in enumerate(beam["air_counts_per_bin"]):
@@ -289,23 +374,12 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
     two_d = len(shape) == 2
     cell_axes = (-1,) if two_d else (-1, -2)
 
-    def signal_of(q):
-        return q[1] if not det.photon_counting else q.sum(axis=0)
-
     # signal-weighted (energy integrating) or count-weighted mean energy of the air beam
     beam_weight = weights[1] if not det.photon_counting else detected
     mean_energy = float(np.sum(beam_weight * energies) / np.sum(beam_weight))
     scatter_info = {}
     if sca.model != "none":
-        from simbench.materials import get_material, mu_table
-
-        mu_water = float(mu_table([get_material("water")], [mean_energy])[0, 0])
-        sig = signal_of(primary)
-        scat = scatter_signal(primary, sig, float(signal_of(air[:, None])[0]), sca, pitch,
-                              tuple(a for a in cell_axes), mu_water)
-        scatter_info = {"mu_water_per_mm": mu_water,
-                        "mean_spr": float(np.mean(signal_of(scat) / np.maximum(sig, 1e-300)))}
-        total = primary + scat
+        total, scatter_info = _add_scatter(primary, air, sca, det, pitch, cell_axes, mean_energy)
     else:
         total = primary
 

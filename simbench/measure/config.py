@@ -49,15 +49,64 @@ Scanner-file keys (every unit explicit or stated here)::
       thickness_scale: 200 mm    # thickness: water-equivalent thickness of SPR growth
       kernel_width: 120 mm       # FWHM of the Gaussian scatter kernel on the detector
       grid_transmission: 1.0     # fraction of scatter passing the anti-scatter grid
+
+Physical ranges
+---------------
+Every number is checked against a documented physical range when the file is read, and the
+error names the field's place. The limits are the constants of this module::
+
+    field                              range                                why
+    source.energy                      1 to 800 keV                         attenuation tables
+    source.kvp                         40 to 150 kV                         tube model
+    source.anode_angle                 5 to 30 deg                          tube model
+    source.energy_bin                  0.1 to 2 keV                         tube model
+    source.filtration[].thickness      0 to 100 mm                          beyond any beam filter
+    source.filtration (all filters)    passes >= 1e-6 of the photons        else no usable beam
+    source.focal_spot                  0 to 10 mm (u and v)                 CT foci ~0.5 to 1.5 mm
+    source.focal_spot_samples          1 to 64 (u and v)                    sub-rays
+    exposure.air_counts                1 to 1e9 photons per cell per view   below 1 the air starves
+    exposure.mas_per_view              above 0, up to 1000 mAs              CT views ~0.1 to 2 mAs
+    exposure.tube_current_ma           above 0, up to 2000 mA               CT tubes ~1300 mA at most
+    exposure.view_time_ms              above 0, up to 60000 ms              and mA x ms / 1000 <= 1000
+    exposure (mAs, with the geometry)  1 to 1e9 detected photons in air     as air_counts
+    detector.thresholds                1 keV to below the source's top      each bin >= 1 photon in air
+    detector.energy_resolution         0 to 50 keV FWHM                     CdTe ~5 to 10 keV
+    detector.density_g_cm3             1e-4 to 22.6 g/cm^3                  osmium is the densest
+    detector.thickness                 0.001 to 100 mm                      foils to gas chambers
+    detector.electronic_noise          0 to 1e6 counts rms
+    detector.dark_level                0 to 1e9 counts
+    detector.full_scale                above dark_level, up to 1e12 counts  else every reading starves
+    detector.gain_spread, gain_drift   0 to 0.5 relative rms
+    detector.dead_cells, hot_cells     fraction 0 to 0.5, or listed cells   on the detector
+    detector.blur                      0 to 20 mm FWHM (u and v)
+    detector.crosstalk                 0 to 0.25                            kernel [c, 1 - 2c, c] >= 0
+    detector.lag                       0 to 0.9
+    detector.flat_frames, dark_frames  1 to 10000
+    detector.pattern_seed              0 to 2^63 - 1
+    detector.aperture_samples          1 to 64 (u and v)                    sub-rays
+    scatter.spr_at_centre              0 to 10                              real SPRs reach a few
+    scatter.max_spr                    0 to 10
+    scatter.thickness_scale            1 to 10000 mm
+    scatter.kernel_width               1 to 2000 mm FWHM                    and within the memory budget
+    scatter.grid_transmission          0 to 1
+
+Rules across fields: one of energy / kvp / spectrum_file; exactly one way of giving the
+exposure; an mAs exposure needs a tube (not a monochromatic line or a relative spectrum file)
+and a divergent beam (a source-detector distance); ``full_scale`` above ``dark_level``;
+photon-counting thresholds below the source's highest energy; hot cells need ``full_scale``.
+The checks that need the geometry or the spectrum (mAs to detected photons, counts per
+photon-counting bin, listed cells on the detector, the scatter kernel's memory, an air beam
+that saturates) are :func:`check_beam`, run when a scanner file is read.
 """
 
 from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from functools import lru_cache
 from typing import Any
 
-from simbench.errors import InputError, Where
+from simbench.errors import InputError, Where, warn_input
 from simbench.materials.attenuation import VALID_ENERGY_RANGE_KEV
 from simbench.materials.spectra import KVP_RANGE
 from simbench.spec import Section, check_integer, parse_energy, parse_length
@@ -68,6 +117,63 @@ ENERGY_BIN_RANGE_KEV = (0.1, 2.0)
 
 #: the most photon-counting thresholds (energy bins) a detector may have
 MAX_THRESHOLDS = 8
+
+# Physical ranges of the physics sections' numbers (the module docstring's table).
+#: thickness of one filter, mm (beam filters and bow-ties are at most a few cm of aluminium)
+FILTER_THICKNESS_RANGE_MM = (0.0, 100.0)
+#: the least fraction of the source's photons the whole filtration may pass; the hardest
+#: filters in use pass far more (0.6 mm tin at 150 kV: 9 %, 10 mm aluminium at 40 kV: 0.5 %
+#: of the tube model's unfiltered photons, computed with this package)
+MIN_FILTER_TRANSMISSION = 1e-6
+#: focal-spot width along u and v, mm (CT tubes: about 0.5 to 1.5 mm, recalled from memory)
+FOCAL_SPOT_RANGE_MM = (0.0, 10.0)
+#: sub-samples of the focal spot and of each cell's aperture, per axis
+SAMPLES_RANGE = (1, 64)
+#: detected photons per cell per view with no object: below 1 the air beam itself starves;
+#: 1e9 is far beyond any detector cell's count in one view, and keeps every reading exact
+#: to float32's precision and far from its overflow
+AIR_COUNTS_RANGE = (1.0, 1.0e9)
+#: largest tube current-time product of one view, mAs (clinical CT views: about 0.1 to 2 mAs)
+MAX_MAS_PER_VIEW = 1000.0
+#: largest tube current, mA (CT tubes deliver up to about 1300 mA, recalled from memory)
+MAX_TUBE_CURRENT_MA = 2000.0
+#: longest exposure of one view, ms (one minute)
+MAX_VIEW_TIME_MS = 60000.0
+#: photon-counting thresholds, keV (lowest; the highest must lie below the source's top energy)
+MIN_THRESHOLD_KEV = 1.0
+#: energy resolution (FWHM) of a photon-counting cell, keV (CdTe: about 5 to 10 keV)
+MAX_ENERGY_RESOLUTION_KEV = 50.0
+#: sensor density, g/cm^3 (gas to osmium, the densest element at 22.6)
+SENSOR_DENSITY_RANGE_G_CM3 = (1e-4, 22.6)
+#: sensor thickness, mm (1 um foils to deep gas chambers)
+SENSOR_THICKNESS_RANGE_MM = (0.001, 100.0)
+#: electronic noise, counts rms per reading
+MAX_ELECTRONIC_NOISE = 1.0e6
+#: dark level, counts per reading
+MAX_DARK_LEVEL = 1.0e9
+#: saturation level, counts per reading (above the dark level)
+MAX_FULL_SCALE = 1.0e12
+#: relative rms of the per-cell gain and of its drift
+MAX_GAIN_SPREAD = 0.5
+#: fraction of cells drawn dead or hot
+MAX_DEFECT_FRACTION = 0.5
+#: FWHM of the point-spread function along u and v, mm
+MAX_BLUR_MM = 20.0
+#: nearest-neighbour cross-talk fraction (the kernel [c, 1 - 2c, c] stays >= 0 and peaked)
+MAX_CROSSTALK = 0.25
+#: recursive lag fraction
+MAX_LAG = 0.9
+#: readings averaged into the flat and the dark frame
+FRAMES_RANGE = (1, 10000)
+#: largest pattern seed (numpy seeds are any non-negative integer; this keeps them int64)
+MAX_PATTERN_SEED = 2**63 - 1
+#: scatter-to-primary ratios (SPRs of cone-beam CT of the trunk reach a few, recalled from
+#: memory; 10 leaves room for grids-off extremes)
+MAX_SPR = 10.0
+#: water-equivalent thickness scale of the thickness model, mm
+THICKNESS_SCALE_RANGE_MM = (1.0, 10000.0)
+#: FWHM of the scatter kernel on the detector, mm (published kernels span tens to hundreds)
+KERNEL_WIDTH_RANGE_MM = (1.0, 2000.0)
 
 #: densities (g/cm^3) of common sensor materials (recalled from memory; CRC Handbook values)
 SENSOR_DENSITY_G_CM3 = {
@@ -262,8 +368,37 @@ class Physics:
 
 
 # --------------------------------------------------------------------------------------------
-# Parsers
+# Range checks
 # --------------------------------------------------------------------------------------------
+
+
+def _check_range(value: float, where: Where, lo: float, hi: float, unit: str = "", *,
+                 lo_open: bool = False, what: str = "", why_small: str = "",
+                 why_large: str = "") -> float:
+    """``value`` if it lies in [lo, hi] (or (lo, hi]), else a one-line InputError."""
+    u = f" {unit}" if unit else ""
+    small = value <= lo if lo_open else value < lo
+    if small or value > hi:
+        why = why_small if small else why_large
+        span = f"above {lo:g} and up to {hi:g}{u}" if lo_open else f"{lo:g} to {hi:g}{u}"
+        raise InputError(where, f"{value:g}{u} is too {'small' if small else 'large'}"
+                         + (f": {why}" if why else ""), span + (f" {what}" if what else ""))
+    return value
+
+
+def _number(section: Section, key: str, default: Any, lo: float, hi: float, unit: str = "",
+            **kw) -> Any:
+    """A number of the section within its physical range (default if absent)."""
+    if not section.has(key):
+        return default
+    return _check_range(section.number(key), section.at(key), lo, hi, unit, **kw)
+
+
+def _length(section: Section, key: str, default: Any, lo: float, hi: float, **kw) -> Any:
+    """A length (mm) of the section within its physical range (default if absent)."""
+    if not section.has(key):
+        return default
+    return _check_range(section.length(key), section.at(key), lo, hi, "mm", **kw)
 
 
 def _pair(section: Section, key: str, default: tuple, parse_one) -> tuple:
@@ -282,6 +417,22 @@ def _pair(section: Section, key: str, default: tuple, parse_one) -> tuple:
     return (one, one)
 
 
+def _length_pair(section: Section, key: str, lo: float, hi: float) -> tuple:
+    """One length or [u, v], each within [lo, hi] mm; (0, 0) if absent."""
+    return _pair(section, key, (0.0, 0.0), lambda v, w: _check_range(
+        parse_length(v, w, section.length_unit), w, lo, hi, "mm"))
+
+
+def _samples(section: Section, key: str) -> tuple:
+    lo, hi = SAMPLES_RANGE
+    return _pair(section, key, (1, 1), lambda v, w: check_integer(v, w, minimum=lo, maximum=hi))
+
+
+# --------------------------------------------------------------------------------------------
+# Parsers
+# --------------------------------------------------------------------------------------------
+
+
 def parse_source(section: Section) -> SourceConfig:
     """Read the ``source`` section.
 
@@ -289,7 +440,9 @@ def parse_source(section: Section) -> SourceConfig:
     ------
     InputError
         No or several of ``energy`` / ``kvp`` / ``spectrum_file``; energy outside the
-        attenuation tables; kVp outside the tube model's range; negative filter thickness.
+        attenuation tables; kVp, anode angle or bin width outside the tube model's range;
+        a filter thickness, focal spot or sample count outside its range (module table);
+        tube filtration that passes less than :data:`MIN_FILTER_TRANSMISSION` of the photons.
     """
     section.check_keys(["energy", "kvp", "anode_angle", "filtration", "energy_bin",
                         "spectrum_file", "focal_spot", "focal_spot_samples"])
@@ -299,11 +452,8 @@ def parse_source(section: Section) -> SourceConfig:
             "give only one of " + ", ".join(given))
         raise InputError(section.where, problem,
                          "exactly one of 'energy' (monochromatic), 'kvp' (tube) or 'spectrum_file'")
-    spot = _pair(section, "focal_spot", (0.0, 0.0),
-                 lambda v, w: parse_length(v, w, section.length_unit, nonnegative=True))
-    samples = _pair(section, "focal_spot_samples", (1, 1),
-                    lambda v, w: check_integer(v, w, minimum=1, maximum=64))
-    common = dict(focal_spot_mm=spot, focal_spot_samples=samples)
+    spot = _length_pair(section, "focal_spot", *FOCAL_SPOT_RANGE_MM)
+    common = dict(focal_spot_mm=spot, focal_spot_samples=_samples(section, "focal_spot_samples"))
     if given[0] == "energy":
         for key in ("anode_angle", "filtration", "energy_bin"):
             if section.has(key):
@@ -322,7 +472,8 @@ def parse_source(section: Section) -> SourceConfig:
         sub.check_keys(["material", "thickness"], required=["material", "thickness"])
         material = sub.string("material")
         _check_material(material, sub.at("material"))
-        thickness = sub.length("thickness", nonnegative=True)
+        thickness = _length(sub, "thickness", None, *FILTER_THICKNESS_RANGE_MM,
+                            why_large="thicker than any beam filter")
         filtration.append((material, thickness))
     if given[0] == "spectrum_file":
         for key in ("anode_angle", "energy_bin"):
@@ -348,8 +499,74 @@ def parse_source(section: Section) -> SourceConfig:
     if not lo_bin <= ebin <= hi_bin:
         raise section.error("energy_bin", f"energy bin {ebin:g} keV is outside the tube "
                             "model's range", f"a width from {lo_bin:g} to {hi_bin:g} keV")
-    return SourceConfig("tube", kvp=kvp, anode_angle_rad=anode, filtration=tuple(filtration),
-                        energy_bin_kev=ebin, **common)
+    source = SourceConfig("tube", kvp=kvp, anode_angle_rad=anode, filtration=tuple(filtration),
+                          energy_bin_kev=ebin, **common)
+    if filtration:
+        filter_spectrum(unfiltered_tube_spectrum(source), source.filtration,
+                        section.at("filtration"))
+    return source
+
+
+@lru_cache(maxsize=16)
+def _tube(kvp: float, anode_angle_deg: float, bin_kev: float):
+    from simbench.materials import spectra
+
+    return spectra.tube_spectrum(kvp, anode_angle_deg=anode_angle_deg, bin_kev=bin_kev)
+
+
+def unfiltered_tube_spectrum(source: SourceConfig):
+    """The tube's spectrum before its filtration (kept for reuse: the spectrum is immutable).
+
+    Parameters
+    ----------
+    source : SourceConfig
+        A tube source.
+
+    Returns
+    -------
+    simbench.materials.Spectrum
+    """
+    return _tube(float(source.kvp), source.anode_angle_deg, float(source.energy_bin_kev))
+
+
+def filter_spectrum(spectrum, filtration, where: Where):
+    """A spectrum after its filtration, refused if the filtration lets (almost) nothing through.
+
+    Parameters
+    ----------
+    spectrum : simbench.materials.Spectrum
+        The spectrum before filtration.
+    filtration : sequence of (material, thickness in mm)
+    where : Where
+        Place of the ``filtration`` field, named in the error.
+
+    Returns
+    -------
+    simbench.materials.Spectrum
+
+    Raises
+    ------
+    InputError
+        The filtration passes less than :data:`MIN_FILTER_TRANSMISSION` of the photons.
+
+    Notes
+    -----
+    Transmission ``T = sum_i phi_i exp(-sum_f mu_f(E_i) t_f) / sum_i phi_i`` (narrow beam).
+    """
+    from simbench.materials import spectra
+
+    out = spectrum
+    for material, thickness_mm in filtration:
+        out = spectra.filtered(out, material, thickness_mm)
+    if filtration:
+        before = spectrum.total_fluence
+        passed = out.total_fluence / before if before > 0 else 0.0
+        if not passed >= MIN_FILTER_TRANSMISSION:
+            raise InputError(where, f"the filtration passes {passed:.3g} of the source's "
+                             "photons: no usable beam is left",
+                             f"filtration passing at least {MIN_FILTER_TRANSMISSION:g} of them; "
+                             "CT filters pass about 0.1 to 0.4")
+    return out
 
 
 def parse_exposure(section: Section) -> ExposureConfig:
@@ -358,7 +575,8 @@ def parse_exposure(section: Section) -> ExposureConfig:
     Raises
     ------
     InputError
-        Zero, negative or missing exposure, or more than one way of giving it.
+        Missing exposure, more than one way of giving it, or a value outside its physical
+        range (module table).
     """
     section.check_keys(["air_counts", "mas_per_view", "tube_current_ma", "view_time_ms"])
     ways = [k for k in ("air_counts", "mas_per_view", "tube_current_ma") if section.has(k)]
@@ -367,24 +585,31 @@ def parse_exposure(section: Section) -> ExposureConfig:
         raise InputError(section.where, problem,
                          "exactly one of 'air_counts', 'mas_per_view', or 'tube_current_ma' "
                          "with 'view_time_ms'")
+    if ways[0] in ("air_counts", "mas_per_view") and section.has("view_time_ms"):
+        raise section.error("view_time_ms", "'view_time_ms' needs 'tube_current_ma'",
+                            "remove it or give 'tube_current_ma'")
     if ways[0] == "air_counts":
-        if section.has("view_time_ms"):
-            raise section.error("view_time_ms", "'view_time_ms' needs 'tube_current_ma'",
-                                "remove it or give 'tube_current_ma'")
-        return ExposureConfig(air_counts=section.number("air_counts", minimum=0.0,
-                                                         exclusive_minimum=True))
+        return ExposureConfig(air_counts=_number(
+            section, "air_counts", None, *AIR_COUNTS_RANGE, what="photons per cell per view",
+            why_small="the unattenuated beam itself would starve",
+            why_large="no detector cell counts that many photons in one view"))
+    mas_why = "more than any tube gives in one view"
     if ways[0] == "mas_per_view":
-        if section.has("view_time_ms"):
-            raise section.error("view_time_ms", "'view_time_ms' needs 'tube_current_ma'",
-                                "remove it or give 'tube_current_ma'")
-        return ExposureConfig(mas_per_view=section.number("mas_per_view", minimum=0.0,
-                                                           exclusive_minimum=True))
-    current = section.number("tube_current_ma", minimum=0.0, exclusive_minimum=True)
+        return ExposureConfig(mas_per_view=_number(
+            section, "mas_per_view", None, 0.0, MAX_MAS_PER_VIEW, "mAs", lo_open=True,
+            why_large=mas_why))
+    current = _number(section, "tube_current_ma", None, 0.0, MAX_TUBE_CURRENT_MA, "mA",
+                      lo_open=True, why_large="more than any x-ray tube delivers")
     if not section.has("view_time_ms"):
         raise section.error("view_time_ms", "missing required field 'view_time_ms'",
                             "the exposure time of one view in ms, e.g. 1.0")
-    time_ms = section.number("view_time_ms", minimum=0.0, exclusive_minimum=True)
-    return ExposureConfig(mas_per_view=current * time_ms / 1000.0)
+    time_ms = _number(section, "view_time_ms", None, 0.0, MAX_VIEW_TIME_MS, "ms", lo_open=True)
+    mas = current * time_ms / 1000.0
+    if mas > MAX_MAS_PER_VIEW:
+        raise section.error("view_time_ms", f"{current:g} mA for {time_ms:g} ms is {mas:g} mAs "
+                            f"per view, {mas_why}",
+                            f"at most {MAX_MAS_PER_VIEW:g} mAs per view (mA x ms / 1000)")
+    return ExposureConfig(mas_per_view=mas)
 
 
 def _cells(section: Section, key: str) -> tuple[float, tuple]:
@@ -393,7 +618,7 @@ def _cells(section: Section, key: str) -> tuple[float, tuple]:
         return 0.0, ()
     value = section.raw(key)
     if not isinstance(value, list):
-        return section.number(key, minimum=0.0, maximum=0.5), ()
+        return _number(section, key, 0.0, 0.0, MAX_DEFECT_FRACTION, what="of the cells"), ()
     cells = []
     for item, where in section.sequence(key):
         if isinstance(item, list):
@@ -415,7 +640,8 @@ def parse_detector(section: Section) -> DetectorConfig:
     InputError
         Unknown type; thresholds with an energy-integrating detector, missing with a
         photon-counting one, more than :data:`MAX_THRESHOLDS`, not strictly increasing;
-        negative thickness; a sensor material without density; fractions out of range.
+        a sensor material without density; ``full_scale`` not above ``dark_level``; any
+        number outside its physical range (module table).
     """
     section.check_keys([
         "type", "thresholds", "energy_resolution", "material", "density_g_cm3", "thickness",
@@ -434,7 +660,8 @@ def parse_detector(section: Section) -> DetectorConfig:
             raise section.error("thresholds", f"{len(items)} thresholds given",
                                 f"1 to {MAX_THRESHOLDS} thresholds")
         for item, where in items:
-            energy = parse_energy(item, where)
+            energy = _check_range(parse_energy(item, where), where, MIN_THRESHOLD_KEV,
+                                  VALID_ENERGY_RANGE_KEV[1], "keV")
             if thresholds and energy <= thresholds[-1]:
                 raise InputError(where, f"threshold {energy:g} keV is not above the previous "
                                  f"one ({thresholds[-1]:g} keV)", "strictly increasing thresholds")
@@ -450,24 +677,23 @@ def parse_detector(section: Section) -> DetectorConfig:
     resolution = 0.0
     if section.has("energy_resolution"):
         value = section.raw("energy_resolution")
-        resolution = 0.0 if value in (0, 0.0) else section.energy("energy_resolution")
+        resolution = 0.0 if value in (0, 0.0) else _check_range(
+            section.energy("energy_resolution"), section.at("energy_resolution"), 0.0,
+            MAX_ENERGY_RESOLUTION_KEV, "keV", what="FWHM")
 
     material = None
     density = 0.0
     thickness = 0.0
     if section.has("material"):
         material = section.string("material")
-        thickness = section.length("thickness", nonnegative=True) if section.has("thickness") \
-            else None
-        if thickness is None:
+        if not section.has("thickness"):
             raise section.error("thickness", "missing the sensor thickness",
                                 "a length such as '0.6 mm'")
-        if thickness == 0:
-            raise section.error("thickness", "sensor thickness must be > 0",
-                                "a positive length such as '0.6 mm'")
+        thickness = _length(section, "thickness", None, *SENSOR_THICKNESS_RANGE_MM)
         in_catalogue = _in_catalogue(material)
         if section.has("density_g_cm3"):
-            density = section.number("density_g_cm3", minimum=0.0, exclusive_minimum=True)
+            density = _number(section, "density_g_cm3", None, *SENSOR_DENSITY_RANGE_G_CM3,
+                              "g/cm^3", why_large="denser than osmium, the densest element")
         elif material in SENSOR_DENSITY_G_CM3:
             density = SENSOR_DENSITY_G_CM3[material]
         elif not in_catalogue:
@@ -484,14 +710,18 @@ def parse_detector(section: Section) -> DetectorConfig:
 
     dead_fraction, dead_cells = _cells(section, "dead_cells")
     hot_fraction, hot_cells = _cells(section, "hot_cells")
-    full_scale = None
-    if section.has("full_scale"):
-        full_scale = section.number("full_scale", minimum=0.0, exclusive_minimum=True)
+    dark_level = _number(section, "dark_level", 0.0, 0.0, MAX_DARK_LEVEL, "counts")
+    full_scale = _number(section, "full_scale", None, 0.0, MAX_FULL_SCALE, "counts",
+                         lo_open=True)
+    if full_scale is not None and full_scale <= dark_level:
+        raise section.error("full_scale", f"full scale {full_scale:g} counts is not above the "
+                            f"dark level {dark_level:g} counts: every reading would be clamped "
+                            "at or below the dark level (a fully starved scan)",
+                            f"a full_scale above {dark_level:g} counts")
     if (hot_fraction or hot_cells) and full_scale is None:
         raise section.error("hot_cells", "hot cells read full scale, but no 'full_scale' is given",
                             "add 'full_scale' in counts")
-    blur = _pair(section, "blur", (0.0, 0.0),
-                 lambda v, w: parse_length(v, w, section.length_unit, nonnegative=True))
+    frames_lo, frames_hi = FRAMES_RANGE
     return DetectorConfig(
         type=kind,
         thresholds_kev=tuple(thresholds),
@@ -499,23 +729,27 @@ def parse_detector(section: Section) -> DetectorConfig:
         material=material,
         density_g_cm3=density,
         thickness_mm=thickness,
-        electronic_noise=section.number("electronic_noise", default=0.0, minimum=0.0),
-        dark_level=section.number("dark_level", default=0.0, minimum=0.0),
+        electronic_noise=_number(section, "electronic_noise", 0.0, 0.0, MAX_ELECTRONIC_NOISE,
+                                 "counts", what="rms"),
+        dark_level=dark_level,
         full_scale=full_scale,
-        gain_spread=section.number("gain_spread", default=0.0, minimum=0.0, maximum=0.5),
-        gain_drift=section.number("gain_drift", default=0.0, minimum=0.0, maximum=0.5),
+        gain_spread=_number(section, "gain_spread", 0.0, 0.0, MAX_GAIN_SPREAD,
+                            what="relative rms"),
+        gain_drift=_number(section, "gain_drift", 0.0, 0.0, MAX_GAIN_SPREAD, what="relative rms"),
         dead_fraction=dead_fraction,
         hot_fraction=hot_fraction,
         dead_cells=dead_cells,
         hot_cells=hot_cells,
-        blur_fwhm_mm=blur,
-        crosstalk=section.number("crosstalk", default=0.0, minimum=0.0, maximum=0.25),
-        lag=section.number("lag", default=0.0, minimum=0.0, maximum=0.9),
-        flat_frames=section.integer("flat_frames", default=20, minimum=1),
-        dark_frames=section.integer("dark_frames", default=20, minimum=1),
-        pattern_seed=section.integer("pattern_seed", default=0, minimum=0),
-        aperture_samples=_pair(section, "aperture_samples", (1, 1),
-                               lambda v, w: check_integer(v, w, minimum=1, maximum=64)),
+        blur_fwhm_mm=_length_pair(section, "blur", 0.0, MAX_BLUR_MM),
+        crosstalk=_number(section, "crosstalk", 0.0, 0.0, MAX_CROSSTALK),
+        lag=_number(section, "lag", 0.0, 0.0, MAX_LAG),
+        flat_frames=section.integer("flat_frames", default=20, minimum=frames_lo,
+                                    maximum=frames_hi),
+        dark_frames=section.integer("dark_frames", default=20, minimum=frames_lo,
+                                    maximum=frames_hi),
+        pattern_seed=section.integer("pattern_seed", default=0, minimum=0,
+                                     maximum=MAX_PATTERN_SEED),
+        aperture_samples=_samples(section, "aperture_samples"),
     )
 
 
@@ -556,7 +790,7 @@ def parse_scatter(section: Section) -> ScatterConfig:
     Raises
     ------
     InputError
-        Unknown model, missing or out-of-range model settings.
+        Unknown model, missing or out-of-range model settings (module table).
     """
     section.check_keys(["model", "spr_at_centre", "max_spr", "thickness_scale", "kernel_width",
                         "grid_transmission"])
@@ -569,15 +803,16 @@ def parse_scatter(section: Section) -> ScatterConfig:
         elif section.has(key):
             raise section.error(key, f"'{key}' does not apply to scatter model '{model}'",
                                 "remove it")
-    kernel_default = ScatterConfig.kernel_fwhm_mm
+    spr_why = "beyond the scatter-to-primary ratios of real scans"
     return ScatterConfig(
         model=model,
-        spr_at_centre=section.number("spr_at_centre", default=0.0, minimum=0.0, maximum=100.0),
-        max_spr=section.number("max_spr", default=0.0, minimum=0.0, maximum=100.0),
-        thickness_scale_mm=section.length("thickness_scale", default=1.0, positive=True),
-        kernel_fwhm_mm=section.length("kernel_width", default=kernel_default, positive=True),
-        grid_transmission=section.number("grid_transmission", default=1.0, minimum=0.0,
-                                         maximum=1.0),
+        spr_at_centre=_number(section, "spr_at_centre", 0.0, 0.0, MAX_SPR, why_large=spr_why),
+        max_spr=_number(section, "max_spr", 0.0, 0.0, MAX_SPR, why_large=spr_why),
+        thickness_scale_mm=_length(section, "thickness_scale", 1.0, *THICKNESS_SCALE_RANGE_MM),
+        kernel_fwhm_mm=_length(section, "kernel_width", ScatterConfig.kernel_fwhm_mm,
+                               *KERNEL_WIDTH_RANGE_MM, what="FWHM"),
+        grid_transmission=_number(section, "grid_transmission", 1.0, 0.0, 1.0,
+                                  what="of the scatter"),
     )
 
 
@@ -598,8 +833,17 @@ def parse_physics(section: Section) -> Physics:
     return physics
 
 
+def _exposure_key(physics: Physics, section: Section) -> tuple[Section, str]:
+    """The exposure section and the key that sets the exposure."""
+    exposure = section.section("exposure")
+    for key in ("air_counts", "mas_per_view", "tube_current_ma"):
+        if exposure.has(key):
+            return exposure, key
+    return exposure, "air_counts"  # pragma: no cover - parse_exposure requires one
+
+
 def check_physics(physics: Physics, section: Section) -> None:
-    """Checks across sections: an mAs exposure needs a tube; thresholds below the kVp.
+    """Checks across sections: an mAs exposure needs a tube; thresholds below the top energy.
 
     Parameters
     ----------
@@ -608,17 +852,128 @@ def check_physics(physics: Physics, section: Section) -> None:
         The scanner mapping holding the ``source``, ``exposure`` and ``detector`` sections.
     """
     src, det = physics.source, physics.detector
-    if physics.exposure.mas_per_view is not None and src.kind == "monochromatic":
-        exposure = section.section("exposure")
-        key = "mas_per_view" if exposure.has("mas_per_view") else "tube_current_ma"
-        raise exposure.error(key, "a monochromatic source has no tube output per mAs",
-                             "give 'air_counts' for a monochromatic source")
+    if physics.exposure.mas_per_view is not None and src.kind != "tube":
+        exposure, key = _exposure_key(physics, section)
+        what = ("a monochromatic source" if src.kind == "monochromatic"
+                else "a spectrum file (relative fluence)")
+        raise exposure.error(key, f"{what} has no tube output per mAs",
+                             f"give 'air_counts' for {what.split(' (')[0]}")
     top = src.kvp if src.kind == "tube" else src.energy_kev if src.kind == "monochromatic" \
         else None
-    if det.photon_counting and top is not None and det.thresholds_kev[0] >= top:
-        raise section.section("detector").error(
-            "thresholds", f"the lowest threshold {det.thresholds_kev[0]:g} keV is not below the "
-            f"source's highest energy {top:g} keV", f"thresholds below {top:g} keV")
+    if det.photon_counting and top is not None:
+        items = section.section("detector").sequence("thresholds")
+        for energy, (_, where) in zip(det.thresholds_kev, items):
+            if energy >= top:
+                raise InputError(where, f"threshold {energy:g} keV is not below the source's "
+                                 f"highest energy {top:g} keV: its bin would count no photons",
+                                 f"thresholds below {top:g} keV")
+
+
+def _sdd_mm(geometry) -> float | None:
+    """Source-detector distance of a geometry (first view of free poses); None if parallel."""
+    if geometry.parallel:
+        return None
+    if math.isfinite(geometry.sdd_mm):
+        return float(geometry.sdd_mm)
+    import numpy as np
+
+    p = geometry.explicit
+    return float(np.linalg.norm(p.detector_centre[0] - p.source[0]))
+
+
+def check_beam(physics: Physics, section: Section, geometry, spectrum) -> None:
+    """Checks that need the geometry and the source spectrum, when a scanner file is read.
+
+    Parameters
+    ----------
+    physics : Physics
+    section : Section
+        The scanner mapping (for the places of the fields).
+    geometry : simbench.geometry.ScannerGeometry
+    spectrum : simbench.materials.Spectrum or SpectrumArrays
+        The source spectrum, filtration applied.
+
+    Raises
+    ------
+    InputError
+        An mAs exposure on a parallel beam (no source-detector distance) or giving a number
+        of detected photons per cell per view in air outside :data:`AIR_COUNTS_RANGE`; a
+        sensor that absorbs none of the spectrum; a photon-counting bin that gets less than
+        1 photon per cell per view in air; a listed dead or hot cell off the detector; a
+        scatter kernel whose work arrays exceed the memory budget.
+
+    Warns
+    -----
+    InputWarning
+        The open beam reaches ``full_scale`` (air readings saturate).
+    """
+    import numpy as np
+
+    from simbench.measure import detected_air_photons
+    from simbench.measure.detector import response_weights, sensor_efficiency
+
+    exposure, det, sca = physics.exposure, physics.detector, physics.scatter
+    energies = np.asarray(spectrum.energies_kev, dtype=np.float64)
+    fluence = np.asarray(spectrum.fluence, dtype=np.float64)
+    detector = section.section("detector", default=None)
+    if det.material is not None and not np.sum(fluence * sensor_efficiency(energies, det)) > 0:
+        raise detector.error("thickness", "the sensor absorbs none of the source's photons",
+                             "a thicker or denser sensor")
+    pitch = (geometry.pitch_u_mm, geometry.pitch_v_mm)
+    sdd = _sdd_mm(geometry)
+    if exposure.mas_per_view is not None:
+        exp_section, key = _exposure_key(physics, section)
+        if sdd is None:
+            raise exp_section.error(key, "an mAs exposure needs a source-detector distance, "
+                                    "and a parallel beam has none",
+                                    "give 'air_counts' for a parallel beam")
+        detected = detected_air_photons(physics, energies, fluence, pitch, sdd)
+        total = float(detected.sum())
+        lo, hi = AIR_COUNTS_RANGE
+        if not lo <= total <= hi:
+            per_mas = total / exposure.mas_per_view
+            raise exp_section.error(
+                key, f"{exposure.mas_per_view:g} mAs per view gives {total:.3g} detected photons "
+                f"per cell per view in air",
+                f"an exposure giving {lo:g} to {hi:g} photons per cell per view, here "
+                f"{lo / per_mas:.3g} to {min(hi / per_mas, MAX_MAS_PER_VIEW):.3g} mAs per view")
+    else:
+        detected = detected_air_photons(physics, energies, fluence, pitch, sdd)
+    weights, _ = response_weights(detected, energies, det)
+    air = weights.sum(axis=1)
+    if det.photon_counting:
+        items = detector.sequence("thresholds")
+        for b, (count, (_, where)) in enumerate(zip(air, items)):
+            if not count >= 1.0:
+                raise InputError(where, f"the bin from {det.thresholds_kev[b]:g} keV gets "
+                                 f"{count:.3g} photons per cell per view in air: it would starve",
+                                 "thresholds whose bins get at least 1 photon per cell per view "
+                                 "in air: lower thresholds, or a larger exposure")
+    n_rows = 1 if geometry.dimension == 2 else geometry.n_rows
+    for key, cells in (("dead_cells", det.dead_cells), ("hot_cells", det.hot_cells)):
+        if not cells:
+            continue
+        for (row, col), (_, where) in zip(cells, detector.sequence(key)):
+            if row >= n_rows or col >= geometry.n_cols:
+                raise InputError(where, f"cell [{row}, {col}] is not on the detector",
+                                 f"rows 0 to {n_rows - 1}, columns 0 to {geometry.n_cols - 1}")
+    if sca.model != "none":
+        from simbench.budget import check_bytes
+        from simbench.measure.scatter import kernel_work_bytes
+
+        shape = (geometry.n_cols,) if geometry.dimension == 2 else (n_rows, geometry.n_cols)
+        need = kernel_work_bytes(shape, sca.kernel_fwhm_mm, pitch)
+        scatter = section.section("scatter")
+        check_bytes(need, scatter.at("kernel_width") if scatter.has("kernel_width")
+                    else scatter.where, f"the scatter kernel of {sca.kernel_fwhm_mm:g} mm over "
+                    f"cells of {pitch[0]:g} mm", "a narrower kernel_width")
+    if det.full_scale is not None:
+        brightest = float(air[1] if not det.photon_counting else air.max()) + det.dark_level
+        if brightest >= det.full_scale:
+            warn_input(detector.at("full_scale"),
+                       f"the open beam reads about {brightest:.3g} counts (dark level "
+                       f"included), at or above full_scale {det.full_scale:g}: air readings "
+                       "saturate and the projections behind thin objects read low")
 
 
 def describe(physics: Physics) -> dict[str, Any]:

@@ -1,10 +1,18 @@
 """The phantom language: read a located YAML document into a compiled :class:`Phantom`.
 
 The reader walks the document with :class:`simbench.spec.Section`, so every bad value becomes a
-one-line :class:`~simbench.errors.InputError` naming the file, line, column and field. Groups
-and patterns (ring, array, bars) are expanded here into plain primitives placed in the world
-frame; :mod:`simbench.phantom.build` packs them into the arrays of
-:mod:`simbench.phantom.compiled`. The full language is described in ``docs/phantom-language.md``.
+one-line :class:`~simbench.errors.InputError` naming the file, line, column and field. Reading
+has three stages:
+
+1. :func:`simbench.phantom.expansion.check_expansion` counts what the groups and patterns
+   expand to and refuses a document that is too large, before anything is built;
+2. every distinct entry (object, group, ring, array, bars) is read and checked once into a
+   template in its parent's frame (an entry shared through a YAML alias, or copied by a
+   pattern, is read once);
+3. the templates are expanded into plain primitives placed in the world frame, which
+   :mod:`simbench.phantom.build` packs into the arrays of :mod:`simbench.phantom.compiled`.
+
+The full language and the range of every number are described in ``docs/phantom-language.md``.
 """
 
 from __future__ import annotations
@@ -21,13 +29,17 @@ from simbench.errors import InputError, Where
 from simbench.materials import catalogue
 from simbench.materials.spec import MaterialSpec
 from simbench.phantom import compiled as C
+from simbench.phantom import ranges as R
+from simbench.phantom.build import (CopiesTemplate, GroupTemplate, ObjectTemplate, build_phantom,
+                                    check_extent, expand)
+from simbench.phantom.expansion import (MAX_OBJECTS, MAX_POLYGON_VERTICES, PATTERNS,
+                                        check_expansion)
 from simbench.phantom.polygon import polygon_problem
 from simbench.phantom.rotations import align_z_to, compose_world_rotations, rotation_about
-from simbench.spec import Section, check_number, parse_length, parse_vector
+from simbench.spec import Section, check_number
 
 SHAPES_2D = ("circle", "ellipse", "rectangle", "polygon")
 SHAPES_3D = ("sphere", "ellipsoid", "box", "cylinder", "cone")
-PATTERNS = ("group", "ring", "array", "bars")
 COMMON_KEYS = ("shape", "name", "material", "mu", "mode", "roi", "edge", "centre")
 SHAPE_KEYS = {
     "circle": ("radius", "angle"),
@@ -41,41 +53,11 @@ SHAPE_KEYS = {
     "cone": ("base_radius", "top_radius", "height", "axis", "rotate"),
 }
 TOP_KEYS = ("name", "dimension", "units", "description", "materials", "objects", "voxels")
-MAX_COPIES = 100_000  # copies per pattern: far beyond any test object, below memory trouble
+#: copies of one pattern; the total over the document is limited by
+#: :data:`simbench.phantom.expansion.MAX_OBJECTS` (checked first)
+MAX_COPIES = MAX_OBJECTS
 MATERIAL_KEYS = ("formula", "mass_fractions", "density")
 ROTATE_VALID = "a list of rotations about world axes such as [x: 30, z: 45] (degrees)"
-
-
-@dataclass(frozen=True)
-class Frame:
-    """A placement: ``outer = origin + rotation @ local`` (mm)."""
-
-    origin: np.ndarray
-    rotation: np.ndarray
-
-    def place(self, centre: np.ndarray, rotation: np.ndarray) -> "Frame":
-        return Frame(self.origin + self.rotation @ centre, self.rotation @ rotation)
-
-
-WORLD = Frame(np.zeros(3), np.eye(3))
-
-
-@dataclass
-class Primitive:
-    """One expanded object in the world frame, before packing into arrays."""
-
-    shape: int
-    centre: np.ndarray
-    to_world: np.ndarray
-    half_sizes: tuple
-    params: tuple = (0.0, 0.0, 0.0, 0.0)
-    polygon: np.ndarray | None = None
-    material: int = 0
-    mode: int = C.REPLACE
-    name: str = ""
-    roi: bool = False
-    edge: bool = False
-    bound_radius: float = 0.0
 
 
 @dataclass
@@ -88,7 +70,8 @@ class Reader:
     custom: dict = field(default_factory=dict)
     materials: list = field(default_factory=list)
     material_index: dict = field(default_factory=dict)
-    primitives: list = field(default_factory=list)
+    objects: list = field(default_factory=list)
+    templates: dict = field(default_factory=dict)
 
     # -- materials ------------------------------------------------------------------------
     def use_material(self, key: Any, spec_factory) -> int:
@@ -116,6 +99,12 @@ class Reader:
                              " 'materials', or 'mu: <value> /mm'")
         return self.use_material(("catalogue", name), lambda: spec)
 
+    def object_template(self, **fields) -> ObjectTemplate:
+        """A new object template, numbered in reading order."""
+        template = ObjectTemplate(index=len(self.objects), **fields)
+        self.objects.append(template)
+        return template
+
     def mu_material(self, mu_per_mm: float) -> int:
         value = float(mu_per_mm)
         return self.use_material(("mu", value), lambda: MaterialSpec(
@@ -136,35 +125,37 @@ def read_document(document: Any, source: str, directory: Path | None) -> C.Phant
     top.check_keys(TOP_KEYS, required=("name", "dimension"))
     units = top.string("units", "mm", choices=("mm", "cm"))
     top = Section(top.node, top.where, units)
-    name = top.string("name")
+    name = R.text(top, "name", required=True)
     dimension = top.integer("dimension")
     if dimension not in (2, 3):
         raise top.error("dimension", f"must be 2 or 3, got {dimension}", "2 or 3")
-    top.raw("description", "")
+    R.text(top, "description", "")
     has_objects, has_voxels = top.has("objects"), top.has("voxels")
     if has_objects == has_voxels:
         raise InputError(top.where.child("objects"),
                          "a phantom needs exactly one of 'objects' and 'voxels'"
                          + (", got both" if has_objects else ", got neither"),
                          "an 'objects' list for an analytic phantom or a 'voxels' section")
+    if has_objects:
+        check_expansion(top)
     reader = Reader(source, dimension, directory)
     materials = top.section("materials", None)
     if materials is not None:
         _read_custom_materials(reader, materials)
-    voxels = None
+    voxels = placed = None
     if has_objects:
         items = top.sequence("objects")
         if not items:
             raise top.error("objects", "the objects list is empty", "at least one object")
-        for item, where in items:
-            _read_item(reader, item, where, units, WORLD, "")
+        templates = tuple(_read_item(reader, item, where, units) for item, where in items)
+        placed = expand(GroupTemplate(np.zeros(3), None, templates))
+        check_extent(reader.objects, placed, R.MAX_EXTENT_MM)
     else:
         from simbench.phantom.voxels import read_voxels
 
         voxels = read_voxels(reader, top.section("voxels"))
-    from simbench.phantom.build import build_phantom
-
-    return build_phantom(name, dimension, reader.materials, reader.primitives, voxels, source)
+    return build_phantom(name, dimension, reader.materials, reader.objects, placed, voxels,
+                         source)
 
 
 def _read_custom_materials(reader: Reader, section: Section) -> None:
@@ -178,7 +169,8 @@ def _read_custom_materials(reader: Reader, section: Section) -> None:
             raise InputError(entry.where, "a custom material needs exactly one of 'formula' and "
                              "'mass_fractions'", "formula: H2O or mass_fractions: {H: 0.112, O: 0.888}")
         density = check_number(entry.raw("density"), entry.at("density"), minimum=0.0,
-                                exclusive_minimum=True, unit="g/cm3")
+                               exclusive_minimum=True, maximum=R.MAX_DENSITY_G_CM3,
+                               unit="g/cm3")
         kwargs: dict = {"density_g_cm3": density}
         if entry.has("formula"):
             kwargs["formula"] = entry.string("formula")
@@ -187,7 +179,8 @@ def _read_custom_materials(reader: Reader, section: Section) -> None:
             values = {}
             for element in fractions.keys():
                 values[str(element)] = check_number(fractions.raw(element), fractions.at(element),
-                                                    minimum=0.0, exclusive_minimum=True)
+                                                    minimum=0.0, exclusive_minimum=True,
+                                                    maximum=1.0)
             if not values:
                 raise entry.error("mass_fractions", "no elements given",
                                   "element: fraction pairs such as {H: 0.112, O: 0.888}")
@@ -227,22 +220,27 @@ def _item_kind(node: Any, where: Where) -> str:
     return kinds[0]
 
 
-def _read_item(reader: Reader, node: Any, where: Where, units: str, frame: Frame,
-               suffix: str) -> None:
+def _read_item(reader: Reader, node: Any, where: Where, units: str) -> Any:
+    """The template of one entry, read once per distinct YAML node."""
+    key = id(node)
+    if key in reader.templates:
+        return reader.templates[key]
     kind = _item_kind(node, where)
     if kind == "shape":
-        _read_object(reader, Section(node, where, units), frame, suffix)
-        return
-    section = Section(node, where, units).section(kind)
-    {"group": _read_group, "ring": _read_ring, "array": _read_array, "bars": _read_bars}[kind](
-        reader, section, frame, suffix)
+        template = _read_object(reader, Section(node, where, units))
+    else:
+        section = Section(node, where, units).section(kind)
+        template = {"group": _read_group, "ring": _read_ring, "array": _read_array,
+                    "bars": _read_bars}[kind](reader, section)
+    reader.templates[key] = template
+    return template
 
 
-def _placement_rotation(reader: Reader, s: Section) -> np.ndarray:
-    """Rotation of a group or pattern frame: 2-D 'angle', 3-D 'rotate'."""
+def _placement_rotation(reader: Reader, s: Section) -> np.ndarray | None:
+    """Rotation of a group or pattern frame: 2-D 'angle', 3-D 'rotate' (None: not turned)."""
     if reader.dimension == 2:
-        return rotation_about("z", s.angle("angle", 0.0))
-    return _read_rotate(s)
+        return rotation_about("z", R.angle(s, "angle")) if s.has("angle") else None
+    return _read_rotate(s) if s.has("rotate") else None
 
 
 def _read_rotate(s: Section) -> np.ndarray:
@@ -255,88 +253,87 @@ def _read_rotate(s: Section) -> np.ndarray:
                              ROTATE_VALID)
         step = Section(item, where)
         axis = next(iter(item))
-        steps.append((axis, step.angle(axis)))
+        steps.append((axis, R.angle(step, axis)))
     return compose_world_rotations(steps)
 
 
 def _centre(reader: Reader, s: Section) -> np.ndarray:
-    values = s.lengths("centre", reader.dimension, (0.0,) * reader.dimension)
+    values = R.point(s, "centre", reader.dimension)
     return np.array(list(values) + [0.0] * (3 - reader.dimension), dtype=np.float64)
 
 
-def _named(name: str, suffix: str) -> str:
-    return f"{name}{suffix}" if name else ""
-
-
-def _read_group(reader: Reader, s: Section, frame: Frame, suffix: str) -> None:
+def _read_group(reader: Reader, s: Section) -> GroupTemplate:
     allowed = ("name", "centre", "objects") + (("angle",) if reader.dimension == 2 else ("rotate",))
     s.check_keys(allowed, required=("objects",))
-    s.string("name", "")
-    inner = frame.place(_centre(reader, s), _placement_rotation(reader, s))
+    R.text(s, "name")
+    centre, rotation = _centre(reader, s), _placement_rotation(reader, s)
     items = s.sequence("objects")
     if not items:
         raise s.error("objects", "the group has no objects", "at least one object")
-    for item, where in items:
-        _read_item(reader, item, where, s.length_unit, inner, suffix)
+    return GroupTemplate(centre, rotation, tuple(
+        _read_item(reader, item, where, s.length_unit) for item, where in items))
 
 
-def _read_ring(reader: Reader, s: Section, frame: Frame, suffix: str) -> None:
+def _read_ring(reader: Reader, s: Section) -> CopiesTemplate:
     allowed = ("name", "centre", "radius", "count", "start_angle", "turn_copies", "object") + (
         ("angle",) if reader.dimension == 2 else ("rotate",))
     s.check_keys(allowed, required=("radius", "count", "object"))
-    s.string("name", "")
-    ring = frame.place(_centre(reader, s), _placement_rotation(reader, s))
-    radius = s.length("radius", positive=True)
+    R.text(s, "name")
+    centre, rotation = _centre(reader, s), _placement_rotation(reader, s)
+    radius = R.size(s, "radius")
     count = s.integer("count", minimum=1, maximum=MAX_COPIES)
-    start = s.angle("start_angle", 0.0)
+    start = R.angle(s, "start_angle")
     turn = s.boolean("turn_copies", False)
-    for k in range(count):
-        phi = start + 2.0 * math.pi * k / count
-        offset = np.array([radius * math.cos(phi), radius * math.sin(phi), 0.0])
-        copy = ring.place(offset, rotation_about("z", phi) if turn else np.eye(3))
-        _read_item(reader, s.raw("object"), s.at("object"), s.length_unit, copy,
-                   f"{suffix} {k + 1}")
+    phi = np.array([start + 2.0 * math.pi * k / count for k in range(count)])
+    offsets = np.array([(radius * math.cos(p), radius * math.sin(p), 0.0) for p in phi])
+    item = _read_item(reader, s.raw("object"), s.at("object"), s.length_unit)
+    return CopiesTemplate(centre, rotation, offsets, phi if turn else None, " {}", item)
 
 
-def _read_array(reader: Reader, s: Section, frame: Frame, suffix: str) -> None:
+def _read_array(reader: Reader, s: Section) -> CopiesTemplate:
     allowed = ("name", "centre", "count", "step", "object") + (
         ("angle",) if reader.dimension == 2 else ("rotate",))
     s.check_keys(allowed, required=("count", "step", "object"))
-    s.string("name", "")
-    array = frame.place(_centre(reader, s), _placement_rotation(reader, s))
+    R.text(s, "name")
+    centre, rotation = _centre(reader, s), _placement_rotation(reader, s)
     count = s.integer("count", minimum=1, maximum=MAX_COPIES)
-    step = np.array(list(s.lengths("step", reader.dimension)) + [0.0] * (3 - reader.dimension))
-    for k in range(count):
-        copy = array.place((k - (count - 1) / 2.0) * step, np.eye(3))
-        _read_item(reader, s.raw("object"), s.at("object"), s.length_unit, copy,
-                   f"{suffix} {k + 1}")
+    step = np.array(list(R.positions(s.raw("step"), s.at("step"), reader.dimension,
+                                     s.length_unit, "step")) + [0.0] * (3 - reader.dimension))
+    offsets = (np.arange(count) - (count - 1) / 2.0)[:, None] * step[None, :]
+    item = _read_item(reader, s.raw("object"), s.at("object"), s.length_unit)
+    return CopiesTemplate(centre, rotation, offsets, None, " {}", item)
 
 
-def _read_bars(reader: Reader, s: Section, frame: Frame, suffix: str) -> None:
+def _read_bars(reader: Reader, s: Section) -> CopiesTemplate:
     allowed = ("name", "centre", "line_pairs_per_mm", "count", "length", "material", "mu", "mode",
                "roi", "edge")
     allowed += ("angle",) if reader.dimension == 2 else ("rotate", "thickness")
     s.check_keys(allowed, required=("line_pairs_per_mm", "count", "length")
                  + (("thickness",) if reader.dimension == 3 else ()))
-    name = s.string("name", "")
+    name = R.text(s, "name")
     lp = check_number(s.raw("line_pairs_per_mm"), s.at("line_pairs_per_mm"), minimum=0.0,
                       exclusive_minimum=True, unit="lp/mm")
-    count = s.integer("count", minimum=1, maximum=MAX_COPIES)
-    length = s.length("length", positive=True)
     width = 1.0 / (2.0 * lp)  # one line pair = one bar + one gap of equal width
-    thickness = s.length("thickness", positive=True) if reader.dimension == 3 else math.inf
-    bars = frame.place(_centre(reader, s), _placement_rotation(reader, s))
+    if not R.MIN_SIZE_MM <= width <= R.MAX_LENGTH_MM:
+        raise s.error("line_pairs_per_mm", f"{lp:.6g} lp/mm makes bars {width:.6g} mm wide",
+                      f"from {1 / (2 * R.MAX_LENGTH_MM):g} to {1 / (2 * R.MIN_SIZE_MM):g} lp/mm "
+                      f"(bars from {R.MIN_SIZE_MM:g} mm to {R.MAX_LENGTH_MM:g} mm wide)")
+    count = s.integer("count", minimum=1, maximum=MAX_COPIES)
+    length = R.size(s, "length")
+    thickness = R.size(s, "thickness") if reader.dimension == 3 else math.inf
+    centre, rotation = _centre(reader, s), _placement_rotation(reader, s)
     material, mode, roi, edge = _read_material_and_flags(reader, s)
-    for k in range(count):
-        place = bars.place(np.array([(k - (count - 1) / 2.0) * 2.0 * width, 0.0, 0.0]), np.eye(3))
-        half = (width / 2.0, length / 2.0, thickness / 2.0)
-        shape = C.RECTANGLE_2D if reader.dimension == 2 else C.BOX
-        bound = math.hypot(half[0], half[1]) if reader.dimension == 2 else math.sqrt(
-            half[0] ** 2 + half[1] ** 2 + half[2] ** 2)
-        reader.primitives.append(Primitive(
-            shape, place.origin, place.rotation, half, material=material, mode=mode,
-            name=_named(name, f"{suffix} bar {k + 1}" if roi else suffix), roi=roi, edge=edge,
-            bound_radius=bound))
+    half = (width / 2.0, length / 2.0, thickness / 2.0)
+    code = C.RECTANGLE_2D if reader.dimension == 2 else C.BOX
+    bound = math.hypot(half[0], half[1]) if reader.dimension == 2 else math.sqrt(
+        half[0] ** 2 + half[1] ** 2 + half[2] ** 2)
+    bar = reader.object_template(code=code, centre=np.zeros(3), rotation=None, half_sizes=half,
+                                 params=(0.0, 0.0, 0.0, 0.0), polygon=None, material=material,
+                                 mode=mode, name=name, roi=roi, edge=edge, bound_radius=bound,
+                                 where=s.where)
+    offsets = np.zeros((count, 3))
+    offsets[:, 0] = (np.arange(count) - (count - 1) / 2.0) * 2.0 * width
+    return CopiesTemplate(centre, rotation, offsets, None, " bar {}" if roi else "", bar)
 
 
 # --------------------------------------------------------------------------------------------
@@ -350,15 +347,15 @@ def _read_material_and_flags(reader: Reader, s: Section) -> tuple[int, int, bool
                          "an object needs exactly one of 'material' and 'mu'"
                          + (", got both" if s.has("mu") else ", got neither"),
                          "material: water, or mu: 0.02 /mm")
+    mode = C.ADD if s.string("mode", "replace", choices=("replace", "add")) == "add" else C.REPLACE
     if s.has("mu"):
-        material = reader.mu_material(s.mu("mu"))
+        material = reader.mu_material(R.mu(s, "mu", may_be_negative=mode == C.ADD))
     else:
         material = reader.named_material(s.raw("material"), s.at("material"))
-    mode = C.ADD if s.string("mode", "replace", choices=("replace", "add")) == "add" else C.REPLACE
     return material, mode, s.boolean("roi", False), s.boolean("edge", False)
 
 
-def _read_object(reader: Reader, s: Section, frame: Frame, suffix: str) -> None:
+def _read_object(reader: Reader, s: Section) -> ObjectTemplate:
     shape = s.raw("shape")
     if not isinstance(shape, str) or shape not in SHAPES_2D + SHAPES_3D:
         close = difflib.get_close_matches(str(shape), SHAPES_2D + SHAPES_3D, n=2, cutoff=0.5)
@@ -373,21 +370,21 @@ def _read_object(reader: Reader, s: Section, frame: Frame, suffix: str) -> None:
         raise s.error("shape", f"'{shape}' is a 2-D shape but the phantom is 3-D (dimension: 3)",
                       "in a 3-D phantom one of " + ", ".join(SHAPES_3D))
     s.check_keys(COMMON_KEYS + SHAPE_KEYS[shape])
-    name = s.string("name", "")
+    name = R.text(s, "name")
     material, mode, roi, edge = _read_material_and_flags(reader, s)
     centre = _centre(reader, s)
     polygon = None
     params = (0.0, 0.0, 0.0, 0.0)
     if reader.dimension == 2:
-        rotation = rotation_about("z", s.angle("angle", 0.0))
+        rotation = rotation_about("z", R.angle(s, "angle"))
         if shape == "circle":
-            r = s.length("radius", positive=True)
+            r = R.size(s, "radius")
             code, half = C.ELLIPSE_2D, (r, r, math.inf)
         elif shape == "ellipse":
-            a, b = s.lengths("semi_axes", 2, positive=True)
+            a, b = R.sizes(s, "semi_axes", 2)
             code, half = C.ELLIPSE_2D, (a, b, math.inf)
         elif shape == "rectangle":
-            w, h = s.lengths("size", 2, positive=True)
+            w, h = R.sizes(s, "size", 2)
             code, half = C.RECTANGLE_2D, (w / 2.0, h / 2.0, math.inf)
         else:
             polygon = _read_vertices(s)
@@ -398,37 +395,38 @@ def _read_object(reader: Reader, s: Section, frame: Frame, suffix: str) -> None:
     else:
         axis_rotation = np.eye(3)
         if shape in ("cylinder", "cone") and s.has("axis"):
-            axis = np.array(s.lengths("axis", 3))
+            axis = np.array(R.positions(s.raw("axis"), s.at("axis"), 3, s.length_unit,
+                                             "axis component"))
             if not np.any(axis):
                 raise s.error("axis", "the axis direction is the zero vector",
                               "a direction such as [0, 0, 1]")
             axis_rotation = align_z_to(axis)
         rotation = _read_rotate(s) @ axis_rotation
         if shape == "sphere":
-            r = s.length("radius", positive=True)
+            r = R.size(s, "radius")
             code, half = C.ELLIPSOID, (r, r, r)
         elif shape == "ellipsoid":
-            code, half = C.ELLIPSOID, s.lengths("semi_axes", 3, positive=True)
+            code, half = C.ELLIPSOID, R.sizes(s, "semi_axes", 3)
         elif shape == "box":
-            w, h, d = s.lengths("size", 3, positive=True)
+            w, h, d = R.sizes(s, "size", 3)
             code, half = C.BOX, (w / 2.0, h / 2.0, d / 2.0)
         elif shape == "cylinder":
             if s.has("radius") == s.has("semi_axes"):
                 raise InputError(s.where.child("radius"), "a cylinder needs exactly one of 'radius' "
                                  "and 'semi_axes'", "radius: 10, or semi_axes: [10, 6]")
             if s.has("radius"):
-                r = s.length("radius", positive=True)
+                r = R.size(s, "radius")
                 a, b = r, r
             else:
-                a, b = s.lengths("semi_axes", 2, positive=True)
-            code, half = C.CYLINDER, (a, b, s.length("height", positive=True) / 2.0)
+                a, b = R.sizes(s, "semi_axes", 2)
+            code, half = C.CYLINDER, (a, b, R.size(s, "height") / 2.0)
         else:
-            r0 = s.length("base_radius", nonnegative=True)
-            r1 = s.length("top_radius", nonnegative=True)
+            r0 = R.size_or_zero(s, "base_radius")
+            r1 = R.size_or_zero(s, "top_radius")
             if r0 == 0.0 and r1 == 0.0:
                 raise s.error("base_radius", "a cone needs at least one radius > 0",
                               "base_radius and top_radius >= 0, not both zero")
-            code, half = C.CONE, (max(r0, r1), max(r0, r1), s.length("height", positive=True) / 2.0)
+            code, half = C.CONE, (max(r0, r1), max(r0, r1), R.size(s, "height") / 2.0)
             params = (r0, r1, 0.0, 0.0)
         if code == C.ELLIPSOID:
             bound = max(half)
@@ -436,21 +434,25 @@ def _read_object(reader: Reader, s: Section, frame: Frame, suffix: str) -> None:
             bound = math.sqrt(sum(h * h for h in half))
         else:
             bound = math.hypot(max(half[0], half[1]), half[2])
-    place = frame.place(centre, rotation)
-    reader.primitives.append(Primitive(
-        code, place.origin, place.rotation, tuple(float(h) for h in half), params, polygon,
-        material, mode, _named(name, suffix), roi, edge, float(bound)))
+    return reader.object_template(
+        code=code, centre=centre, rotation=rotation, half_sizes=tuple(float(h) for h in half),
+        params=params, polygon=polygon, material=material, mode=mode, name=name, roi=roi,
+        edge=edge, bound_radius=float(bound), where=s.where)
 
 
 def _read_vertices(s: Section) -> np.ndarray:
     items = s.sequence("vertices")
-    points = []
-    for item, where in items:
-        points.append(parse_vector(item, where, 2, lambda v, w: parse_length(v, w, s.length_unit)))
+    if len(items) > MAX_POLYGON_VERTICES:
+        raise s.error("vertices", f"the polygon has {len(items):,} vertices",
+                      f"at most {MAX_POLYGON_VERTICES:,} vertices")
+    points = [R.positions(item, where, 2, s.length_unit) for item, where in items]
     polygon = np.array(points, dtype=np.float64).reshape(-1, 2)
     problem = polygon_problem(polygon)
     if problem:
         raise s.error("vertices", problem,
                       "a simple polygon: at least 3 distinct vertices in order, edges not crossing")
+    extent = polygon.max(axis=0) - polygon.min(axis=0)
+    if extent.min() < R.MIN_SIZE_MM:
+        raise s.error("vertices", f"the polygon is only {extent.min():.3g} mm across",
+                      f"a polygon at least {R.MIN_SIZE_MM:g} mm (10 nm) wide and high")
     return polygon
-

@@ -80,6 +80,7 @@ def align_z_to(direction: np.ndarray) -> np.ndarray:
     (c = -1) it is the half turn about x, ``diag(1, -1, -1)``.
     """
     a = np.asarray(direction, dtype=np.float64)
+    a = a / np.max(np.abs(a))  # first to about 1, so that the norm neither overflows nor underflows
     a = a / np.linalg.norm(a)
     c = a[2]
     if c <= -1.0 + 1e-15:
