@@ -118,3 +118,103 @@ def test_missing_files(tmp_path, capsys):
     assert main(["scan", str(tmp_path / "phantom.yaml"), str(tmp_path / "none.yaml"),
                  "-o", str(tmp_path / "scan")]) == 2
     assert "none.yaml" in capsys.readouterr().err
+
+
+# ------------------------------------------------------------------------------------------
+# Files that are not files, deep nesting, long numbers, bad bytes (the reading limits of
+# simbench/spec.py), command-line options and outputs that cannot be written
+# ------------------------------------------------------------------------------------------
+
+def _one_line(capsys) -> str:
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1, err
+    assert "Traceback" not in err[0] and "(valid:" in err[0], err[0]
+    return err[0]
+
+
+def test_devices_and_pipes_are_refused_without_reading(tmp_path, capsys):
+    import os
+
+    fifo = tmp_path / "phantom.fifo"
+    os.mkfifo(fifo)  # reading it would block for ever
+    for path in ("/dev/zero", str(fifo)):
+        assert main(["draw", path, "-o", str(tmp_path / "p.png")]) == 2
+        assert "not a regular file" in _one_line(capsys)
+
+
+@pytest.mark.parametrize("case, text, line, fragment", [
+    # 65 nested lists: one more than simbench.spec.MAX_YAML_DEPTH; column 65 of line 4 is the
+    # 65th bracket of the text written here (counted: 2 spaces and "- " before the first)
+    ("deep nesting", PHANTOM + "  - " + "[" * 100 + "]" * 100 + "\n", 5, "nested more than"),
+    ("long number", PHANTOM.replace("radius: 40", "radius: 4" + "0" * 300), 4, "characters"),
+    ("bad bytes", PHANTOM.replace("water", "wat\udcffr"), 4, "not UTF-8"),
+])
+def test_unreadable_text_names_its_line(tmp_path, capsys, case, text, line, fragment):
+    path = tmp_path / "phantom.yaml"
+    path.write_bytes(text.encode("utf-8", "surrogateescape"))
+    assert main(["draw", str(path), "-o", str(tmp_path / "p.png")]) == 2
+    text = _one_line(capsys)
+    assert re.search(rf"phantom.yaml:{line}:\d+", text) and fragment in text, text
+
+
+def test_an_integer_beyond_float64_is_out_of_range_not_a_traceback(tmp_path, capsys):
+    # 10^400 exceeds the largest float64 (about 1.8e308, IEEE 754)
+    path = tmp_path / "phantom.yaml"
+    path.write_text(PHANTOM.replace("radius: 40", "radius: 1" + "0" * 60))
+    assert main(["draw", str(path), "-o", str(tmp_path / "p.png")]) == 2
+    assert "radius" in _one_line(capsys)
+
+
+@pytest.mark.parametrize("option, value", [
+    ("--energy", "1e6"), ("--energy", "0.5"), ("--energy", "60 MeV"), ("--energy", "nan"),
+    ("--energy", "1" + "0" * 400),
+])
+def test_energies_outside_the_attenuation_tables(tmp_path, capsys, option, value):
+    # the tables cover 1 to 800 keV (simbench.materials.attenuation.VALID_ENERGY_RANGE_KEV)
+    (tmp_path / "phantom.yaml").write_text(PHANTOM)
+    assert main(["trace", str(tmp_path / "phantom.yaml"), "parallel-bench-2d", option, value,
+                 "-o", str(tmp_path / "p.npy")]) == 2
+    assert "--energy" in _one_line(capsys)
+    assert not (tmp_path / "p.npy").exists()
+
+
+@pytest.mark.parametrize("value", ["0", "-3", "100000", "1e9", "many"])
+def test_pixels_out_of_range(tmp_path, capsys, value):
+    assert main(["draw", "water-cylinder", "--pixels", value, "-o", str(tmp_path / "p.png")]) == 2
+    assert "--pixels" in _one_line(capsys)
+
+
+def test_memory_budget_option_is_checked_and_applied(tmp_path, capsys):
+    assert main(["draw", "water-cylinder", "--memory-budget", "lots", "-o",
+                 str(tmp_path / "p.png")]) == 2
+    assert "--memory-budget" in _one_line(capsys)
+    assert main(["draw", "water-cylinder", "--pixels", "2048", "--memory-budget", "16 MiB",
+                 "-o", str(tmp_path / "p.png")]) == 2
+    line = _one_line(capsys)
+    assert "--pixels" in line and "budget of 16 MiB" in line
+    assert not (tmp_path / "p.png").exists()
+
+
+@pytest.mark.parametrize("target", [
+    "under-a-file/p.npy",  # a path through a regular file
+    "/proc/simbench-test/p.npy",  # a system folder no one can create folders in
+])
+def test_outputs_that_cannot_be_written(tmp_path, capsys, target):
+    (tmp_path / "under-a-file").write_text("a file")
+    (tmp_path / "phantom.yaml").write_text(PHANTOM)
+    out = target if target.startswith("/") else str(tmp_path / target)
+    assert main(["trace", str(tmp_path / "phantom.yaml"), "parallel-bench-2d", "--energy",
+                 "60", "-o", out]) == 2
+    line = _one_line(capsys)
+    assert out in line and "cannot write here" in line, line
+
+
+def test_a_scan_into_a_folder_the_user_owns_is_refused(tmp_path, capsys):
+    (tmp_path / "phantom.yaml").write_text(PHANTOM)
+    (tmp_path / "scanner.yaml").write_text(SCANNER)
+    (tmp_path / "thesis").mkdir()
+    (tmp_path / "thesis" / "chapter1.tex").write_text("years of work")
+    assert main(["scan", str(tmp_path / "phantom.yaml"), str(tmp_path / "scanner.yaml"),
+                 "-o", str(tmp_path / "thesis")]) == 2
+    assert "refusing to replace" in _one_line(capsys)
+    assert (tmp_path / "thesis" / "chapter1.tex").read_text() == "years of work"
