@@ -27,6 +27,8 @@ EXAMPLES = {
     "spectrum": "simbench spectrum fan-clinical -o spectrum.png",
     "list": "simbench list",
     "demo": "simbench demo -o simbench-demo",
+    "reconstruct": "simbench reconstruct scan-out --algorithm fbp --option window=hann -o recon-out",
+    "algorithms": "simbench algorithms",
 }
 
 
@@ -173,6 +175,50 @@ def cmd_scan(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_reconstruct(args: argparse.Namespace) -> int:
+    from simbench.execute.reconstruct import run_reconstruction
+
+    if (args.algorithm is None) == (args.external_command is None):
+        raise InputError(Where("<command line>", field="--algorithm"),
+                         "give exactly one of --algorithm and --command",
+                         "--algorithm NAME, or --command 'PROGRAM ARGS' for an external program")
+    if args.external_command is not None:
+        from simbench.recon.external import external_reconstructor
+
+        limit = _number_option(args.time_limit, "--time-limit", 0.1, 7 * 86400.0)
+        reconstructor = external_reconstructor("external", args.external_command, stage=args.stage,
+                                               time_limit_s=limit)
+    else:
+        from simbench.recon.registry import find_reconstructor
+
+        reconstructor = find_reconstructor(args.algorithm, allow_code=True)
+    options = {}
+    for text in args.option:
+        key, sep, value = text.partition("=")
+        if not sep or not key.strip():
+            raise InputError(Where("<command line>", field="--option"),
+                             f"'{text}' is not KEY=VALUE", "an option such as window=hann")
+        options[key.strip()] = value.strip()
+    print(run_reconstruction(Path(args.scan), reconstructor, options, Path(args.output),
+                             grid_options=(args.grid_size, args.voxel_size, args.grid_centre)))
+    return 0
+
+
+def cmd_algorithms(args: argparse.Namespace) -> int:
+    from simbench.recon.registry import list_reconstructors
+
+    for name, found, problem in list_reconstructors():
+        if found is None:
+            print(f"{name}: cannot be loaded: {problem}")
+            continue
+        print(f"{name}  [{found.stage}; {found.origin}]  {found.summary}")
+        for option in found.options:
+            print(f"    {option.name} = {option.default!r}: {option.help} ({option.valid()})")
+    print("Also: --algorithm module:function or file.py:function, and --command 'PROGRAM "
+          "{exchange}' for a program in any language (docs/plugins.md).")
+    return 0
+
+
 def cmd_spectrum(args: argparse.Namespace) -> int:
     from simbench.report.spectrum_figure import plot_spectrum
     from simbench.scanner import load_scanner
@@ -258,6 +304,19 @@ def _pixels_option(value: str) -> int:
     return pixels
 
 
+def _number_option(value: str, option: str, low: float, high: float) -> float:
+    import math
+
+    try:
+        number = float(value)
+    except ValueError:
+        number = math.nan
+    if not (math.isfinite(number) and low <= number <= high):
+        raise InputError(Where("<command line>", field=option), f"'{value}' is not valid",
+                         f"a number from {low:g} to {high:g}")
+    return number
+
+
 class _Parser(argparse.ArgumentParser):
     """An argument parser whose errors are one line and exit 2."""
 
@@ -312,6 +371,33 @@ def build_parser() -> argparse.ArgumentParser:
                    help="reference energy of the truth line integrals, keV (default: the source "
                         "energy, or the mean energy of the detected air spectrum)")
     p.set_defaults(run=cmd_scan)
+
+    p = command("reconstruct", "Reconstruct a scan folder with a built-in, installed or "
+                               "external reconstructor; writes a folder with image.npy and a "
+                               "JSON sidecar.")
+    p.add_argument("scan", help="scan folder written by 'simbench scan'")
+    p.add_argument("--algorithm", metavar="NAME", default=None,
+                   help="a name from 'simbench algorithms', module:function or file.py:function")
+    p.add_argument("--command", metavar="'PROGRAM ARGS'", default=None, dest="external_command",
+                   help="an external program run on an exchange folder ({exchange} in ARGS, "
+                        "else appended); see docs/plugins.md")
+    p.add_argument("--stage", choices=("projections", "counts"), default="projections",
+                   help="input stage of --command (default projections)")
+    p.add_argument("--time-limit", default="3600", metavar="S",
+                   help="seconds before --command is stopped (default 3600)")
+    p.add_argument("--option", action="append", default=[], metavar="KEY=VALUE",
+                   help="an option of the reconstructor (repeat for several)")
+    p.add_argument("--grid-size", default=None, metavar="N|NX,NY[,NZ]",
+                   help="image size in voxels (default: the detector's sampling over the "
+                        "field of view)")
+    p.add_argument("--voxel-size", default=None, metavar="MM", help="voxel size in mm")
+    p.add_argument("--grid-centre", default=None, metavar="X,Y[,Z]", help="grid centre in mm")
+    p.add_argument("-o", "--output", required=True, metavar="DIR", help="output folder")
+    p.set_defaults(run=cmd_reconstruct)
+
+    p = command("algorithms", "List every reconstructor found: built-in, installed through "
+                              "the simbench.reconstructors entry points, with stage and options.")
+    p.set_defaults(run=cmd_algorithms)
 
     p = command("spectrum", "Plot a scanner's source spectrum; print mean energy and HVL.")
     p.add_argument("scanner", help="scanner file or shipped scanner name")

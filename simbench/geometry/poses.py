@@ -97,6 +97,22 @@ class Poses:
             detector_centre=self.detector_centre[views], u_axis=self.u_axis[views],
             v_axis=self.v_axis[views], angles_rad=self.angles_rad[views])
 
+    @classmethod
+    def from_record(cls, record: dict) -> "Poses":
+        """The poses written by :meth:`to_record` (e.g. from a scan's ``scan.json``)."""
+        def vectors(key: str) -> np.ndarray:
+            return np.asarray(record[key], dtype=np.float64).reshape(-1, 3)
+
+        angles = np.array([np.nan if a is None else a for a in record["angles_rad"]],
+                          dtype=np.float64)
+        return cls(bool(record["parallel"]), vectors("source_mm"), vectors("direction"),
+                   vectors("detector_centre_mm"), vectors("u_axis"), vectors("v_axis"),
+                   bool(record["curved_detector"]),
+                   np.asarray(record["col_u_mm"], dtype=np.float64),
+                   np.asarray(record["row_v_mm"], dtype=np.float64),
+                   float(record["pitch_u_mm"]), float(record["pitch_v_mm"]), angles,
+                   int(record["dimension"]))
+
     def to_record(self) -> dict:
         """Every pose array as plain values, for JSON sidecars (NaN angles become null)."""
         return {

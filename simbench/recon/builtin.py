@@ -1,0 +1,5 @@
+"""The built-in reconstructors, declared with their stages and options."""
+
+from __future__ import annotations
+
+BUILTINS: list = []
