@@ -269,9 +269,11 @@ class Reconstructor:
         return check_image(image, grid, self.name)
 
 
-def check_image(image: Any, grid: ImageGrid, name: str) -> np.ndarray:
-    """The image as float32 if it has the grid's shape and finite values; else one line."""
-    where = Where(f"reconstructor '{name}'")
+def check_image(image: Any, grid: ImageGrid, name: str, label: str = "reconstructor"
+                ) -> np.ndarray:
+    """The image as float32 if it has the grid's shape and finite values; else one line
+    naming the ``label`` (``reconstructor``, ``command``) and ``name``."""
+    where = Where(f"{label} '{name}'")
     try:
         array = np.asarray(image)
     except Exception:  # noqa: BLE001 - whatever a plug-in returned

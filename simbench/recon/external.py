@@ -169,7 +169,7 @@ def run_command(command: Sequence[str], acquisition: Acquisition, grid: ImageGri
         if image.dtype not in (np.float32, np.float64):
             raise InputError(where, f"wrote image.npy of dtype {image.dtype}",
                              "float32 or float64")
-        return check_image(image, grid, name)
+        return check_image(image, grid, name, label="command")
 
 
 def _kill_group(process: subprocess.Popen) -> None:
