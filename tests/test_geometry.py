@@ -461,9 +461,10 @@ def test_bad_pose_files(tmp_path):
         geometry_from_text(base.format("stretched.npy"), str(scanner))
     header = ",".join(pose_columns(False))
     rows = [[f"{x:.17g}" for x in r] for r in pose_table(_fan_for_round_trip())]
-    rows[3][0] = "oops"  # view 3 is on line 5 (line 1 is the header)
+    rows[3][1] = "oops"  # view 3 is on line 5 (line 1 is the header)
     (tmp_path / "bad.csv").write_text("\n".join([header] + [",".join(r) for r in rows]) + "\n")
-    with pytest.raises(InputError, match=r"bad.csv:5: a value is not a number"):
+    column = len(rows[3][0]) + 2  # after the first value and its comma, 1-based
+    with pytest.raises(InputError, match=rf"bad.csv:5:{column}: source_y: 'oops' is not a number"):
         geometry_from_text(base.format("bad.csv"), str(scanner))
     (tmp_path / "cols.csv").write_text("source_x,source_y\n1,2\n")
     with pytest.raises(InputError, match=r"cols.csv:1: header: missing column 'source_z'"):

@@ -20,6 +20,7 @@ from typing import Any
 import numpy as np
 
 from simbench.errors import InputError, Where
+from simbench.geometry import limits as L
 from simbench.geometry.poses import Poses
 
 SHORT = "short"
@@ -30,13 +31,17 @@ def _fail(field: str, problem: str, valid: str) -> InputError:
     return InputError(Where(_ARGS, field=field), problem, valid)
 
 
-def _positive_int(value: Any, field: str) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
-        raise _fail(field, f"must be a whole number >= 1, got {value!r}", "an integer >= 1")
+def _positive_int(value: Any, field: str, maximum: int = L.MAX_CELLS) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or not (
+            1 <= value <= maximum):
+        raise _fail(field, f"must be a whole number from 1 to {maximum:,}, got {value!r}",
+                    f"an integer from 1 to {maximum:,}")
     return int(value)
 
 
-def _finite(value: Any, field: str, *, positive: bool = False) -> float:
+def _finite(value: Any, field: str, *, positive: bool = False, length: bool = True) -> float:
+    """A finite number; a length (``length``) within the ranges of :mod:`limits`: a positive
+    one from 1e-5 to 1e5 mm, any other within +-1e5 mm."""
     try:
         number = float(value)
     except (TypeError, ValueError):
@@ -45,6 +50,9 @@ def _finite(value: Any, field: str, *, positive: bool = False) -> float:
         raise _fail(field, f"must be finite, got {value!r}", "a finite number")
     if positive and number <= 0:
         raise _fail(field, f"must be > 0, got {value!r}", "a positive number")
+    if length:
+        where = Where(_ARGS, field=field)
+        return L.check_length(number, where) if positive else L.check_shift(number, where)
     return number
 
 
@@ -95,9 +103,9 @@ def view_angles_rad(n_views: int, arc_rad: float, start_angle_rad: float = 0.0,
     float64 (n_views,)
         ``start + s * i * step`` with ``s = -1`` for clockwise rotation, else ``+1``.
     """
-    n_views = _positive_int(n_views, "n_views")
-    arc_rad = _finite(arc_rad, "arc_rad", positive=True)
-    start_angle_rad = _finite(start_angle_rad, "start_angle_rad")
+    n_views = _positive_int(n_views, "n_views", L.MAX_VIEWS)
+    arc_rad = _finite(arc_rad, "arc_rad", positive=True, length=False)
+    start_angle_rad = _finite(start_angle_rad, "start_angle_rad", length=False)
     if include_arc_end and n_views > 1:
         step = arc_rad / (n_views - 1)
     else:
@@ -164,6 +172,8 @@ def _angles(angles_rad, n_views, arc_rad, short_arc_rad, start_angle_rad, clockw
                         "a 1-D array of view angles in radians")
         if not np.all(np.isfinite(angles)):
             raise _fail("angles_rad", "contains NaN or inf", "finite angles in radians")
+        if angles.shape[0] > L.MAX_VIEWS:
+            raise _fail("angles_rad", f"{angles.shape[0]:,} angles", f"at most {L.MAX_VIEWS:,}")
         if n_views is not None and int(n_views) != angles.shape[0]:
             raise _fail("n_views", f"{n_views} views but {angles.shape[0]} angles given",
                         "leave n_views out or give as many angles")
@@ -177,7 +187,7 @@ def _angles(angles_rad, n_views, arc_rad, short_arc_rad, start_angle_rad, clockw
             raise _fail("arc_rad", "a short scan is not defined for this geometry",
                         "an angle in radians")
         arc_rad = short_arc_rad
-    arc_rad = _finite(arc_rad, "arc_rad", positive=True)
+    arc_rad = _finite(arc_rad, "arc_rad", positive=True, length=False)
     if max_arc_rad is not None and arc_rad > max_arc_rad * (1 + 1e-12):
         raise _fail("arc_rad", f"must be <= 2 pi, got {arc_rad:g}",
                     "an arc of at most one turn (use a helical scan for more)")
@@ -250,7 +260,8 @@ def parallel_poses(*, n_cols: int, pitch_u_mm: float, n_views: int | None = None
     pitch_u_mm = _finite(pitch_u_mm, "pitch_u_mm", positive=True)
     pitch_v_mm = pitch_u_mm if pitch_v_mm is None else _finite(pitch_v_mm, "pitch_v_mm",
                                                                positive=True)
-    col = cell_centres_mm(n_cols, pitch_u_mm, offset_u_mm)
+    _check_memory(n_views, angles_rad, n_cols, n_rows)
+    col = cell_centres_mm(n_cols, pitch_u_mm, _finite(offset_u_mm, "offset_u_mm"))
     row = _rows(dimension, n_rows, pitch_v_mm, offset_v_mm)
     angles = _angles(angles_rad, n_views, arc_rad, math.pi, start_angle_rad, clockwise,
                      include_arc_end, 2 * math.pi)
@@ -259,6 +270,15 @@ def parallel_poses(*, n_cols: int, pitch_u_mm: float, n_views: int | None = None
                  detector_centre=np.zeros_like(d), u_axis=u, v_axis=v, curved=False,
                  col_u_mm=col, row_v_mm=row, pitch_u_mm=pitch_u_mm, pitch_v_mm=pitch_v_mm,
                  angles_rad=angles, dimension=dimension)
+
+
+def _check_memory(n_views, angles_rad, n_cols, n_rows) -> None:
+    """The pose and cell arrays' memory against the budget, before they are built."""
+    views = _positive_int(n_views, "n_views", L.MAX_VIEWS) if angles_rad is None else \
+        int(np.size(angles_rad))
+    L.check_pose_memory(views, _positive_int(n_cols, "n_cols"), _positive_int(n_rows, "n_rows"),
+                        Where(_ARGS, field="n_views"), Where(_ARGS, field="n_cols"),
+                        Where(_ARGS, field="n_rows"))
 
 
 def _dimension(dimension, n_rows) -> int:
@@ -293,6 +313,8 @@ def _divergent(*, sid_mm, sdd_mm, n_cols, pitch_u_mm, n_rows, pitch_v_mm, curved
     pitch_u_mm = _finite(pitch_u_mm, "pitch_u_mm", positive=True)
     pitch_v_mm = pitch_u_mm if pitch_v_mm is None else _finite(pitch_v_mm, "pitch_v_mm",
                                                                positive=True)
+    _check_memory(n_views, angles_rad, n_cols, n_rows)
+    offset_u_mm = _finite(offset_u_mm, "offset_u_mm")
     col = cell_centres_mm(n_cols, pitch_u_mm, offset_u_mm)
     row = _rows(dimension, n_rows, pitch_v_mm, offset_v_mm)
     short = None

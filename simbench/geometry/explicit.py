@@ -13,6 +13,7 @@ import numpy as np
 
 from simbench.errors import InputError, Where
 from simbench.geometry.circular import cell_centres_mm
+from simbench.geometry.limits import MAX_LENGTH_MM
 from simbench.geometry.poses import Poses
 
 #: Relative tolerance on unit length and orthogonality of the detector axes; within it the
@@ -41,6 +42,11 @@ def _vectors(value, field: str, n_views: int | None, place: Place) -> np.ndarray
     bad = np.flatnonzero(~np.all(np.isfinite(array), axis=1))
     if bad.size:
         raise InputError(place(int(bad[0]), field), "contains NaN or inf", "finite numbers")
+    bad = np.flatnonzero(np.any(np.abs(array) > MAX_LENGTH_MM, axis=1))
+    if bad.size and field in ("source", "detector_centre"):  # axes meet the unit check
+        i = int(bad[0])
+        raise InputError(place(i, field), f"{array[i].tolist()} reaches beyond 100 m",
+                         f"coordinates within +-{MAX_LENGTH_MM:g} mm (100 m)")
     return array.copy()
 
 
@@ -99,8 +105,8 @@ def poses_from_arrays(*, detector_centre, u_axis, v_axis, n_cols: int, pitch_u_m
     Raises
     ------
     InputError
-        Wrong shapes, NaN/inf, axes not unit or not orthogonal, source on the detector plane,
-        ray direction in the detector plane.
+        Wrong shapes, NaN/inf, a coordinate beyond +-1e5 mm (100 m), axes not unit or not
+        orthogonal, source on the detector plane, ray direction in the detector plane.
     """
     place = place or _default_place
     parallel = direction is not None

@@ -46,6 +46,7 @@ from typing import Any
 
 
 from simbench.errors import InputError, Where, warn_input
+from simbench.geometry import limits as L
 from simbench.geometry.circular import (cone_poses, fan_angle_rad, fan_poses, parallel_poses,
                                         short_scan_arc_rad)
 from simbench.geometry.explicit import DIVERGENT_FIELDS, PARALLEL_FIELDS, poses_from_arrays
@@ -266,11 +267,13 @@ def _offset(section: Section, key: str, pitch_mm: float) -> float:
     value = section.raw(key, 0.0)
     parsed = split_quantity(value)
     if parsed is not None and parsed[1] in ("cell", "cells"):
-        return check_number(parsed[0], section.at(key)) * pitch_mm
-    if parsed is None or (parsed[1] and parsed[1] not in LENGTH_UNITS_MM):
+        mm = check_number(parsed[0], section.at(key)) * pitch_mm
+    elif parsed is None or (parsed[1] and parsed[1] not in LENGTH_UNITS_MM):
         raise section.error(key, f"expected a length or a number of cells, got '{value}'",
                             "a length such as '0.3 mm' or a cell count such as '0.25 cells'")
-    return parse_length(value, section.at(key), section.length_unit)
+    else:
+        mm = parse_length(value, section.at(key), section.length_unit)
+    return L.check_shift(mm, section.at(key), "offset")
 
 
 def _arc(section: Section, kind: str) -> Any:
@@ -290,7 +293,18 @@ def _arc(section: Section, kind: str) -> Any:
     if kind != "helical" and arc > 2 * math.pi * (1 + 1e-12):
         raise section.error("arc", f"must be at most 360 deg, got {value}",
                             "an arc of at most 360 deg or 'short' (use type helical for more)")
+    if arc > math.radians(L.MAX_HELICAL_ARC_DEG) * (1 + 1e-12):
+        raise section.error("arc", f"must be at most {L.MAX_HELICAL_ARC_DEG:g} deg (1000 turns), "
+                            f"got {value}", "a helical arc of at most 1000 turns")
     return arc
+
+
+def _check_width(section: Section, key: str, count: int, pitch_mm: float) -> None:
+    """Refuse a detector wider (or taller) than MAX_LENGTH_MM."""
+    if count * pitch_mm > L.MAX_LENGTH_MM:
+        raise section.error(key, f"{count:,} cells of {pitch_mm:g} mm make a detector "
+                            f"{count * pitch_mm:.6g} mm wide, beyond 100 m",
+                            f"a detector at most {L.MAX_LENGTH_MM:g} mm (100 m) wide and high")
 
 
 def _shape(section: Section, kind: str) -> bool:
@@ -324,9 +338,10 @@ def parse_geometry(section: Section) -> ScannerGeometry:
     kind = section.string("type", choices=TYPES)
     _check_keys(section, kind)
     curved = _shape(section, kind)
-    n_cols = section.integer("columns", minimum=1)
-    pitch_u = section.length("column_pitch", positive=True)
+    n_cols = section.integer("columns", minimum=1, maximum=L.MAX_CELLS)
+    pitch_u = L.length(section, "column_pitch")
     offset_u = _offset(section, "column_offset", pitch_u)
+    _check_width(section, "columns", n_cols, pitch_u)
 
     if kind == "parallel":
         dimension = section.integer("dimension", 3 if section.has("rows") else 2,
@@ -346,9 +361,10 @@ def parse_geometry(section: Section) -> ScannerGeometry:
                                     "dimension 3", "dimension: 3, or remove this field")
         n_rows = 1
     else:
-        n_rows = section.integer("rows", 1, minimum=1)
-    pitch_v = section.length("row_pitch", pitch_u, positive=True)
+        n_rows = section.integer("rows", 1, minimum=1, maximum=L.MAX_CELLS)
+    pitch_v = L.length(section, "row_pitch", pitch_u)
     offset_v = _offset(section, "row_offset", pitch_v) if dimension == 3 else 0.0
+    _check_width(section, "rows", n_rows, pitch_v)
     common = dict(kind=kind, dimension=dimension, n_cols=n_cols, n_rows=n_rows,
                   pitch_u_mm=pitch_u, pitch_v_mm=pitch_v, offset_u_mm=offset_u,
                   offset_v_mm=offset_v, curved=curved, where=section.where)
@@ -358,26 +374,41 @@ def parse_geometry(section: Section) -> ScannerGeometry:
 
     sid = sdd = math.nan
     if kind != "parallel":
-        sid = section.length("sid", positive=True)
-        sdd = section.length("sdd", positive=True)
+        sid = L.length(section, "sid")
+        sdd = L.length(section, "sdd")
         if sdd <= sid:
             raise section.error("sdd", f"SDD ({sdd:g} mm) must be greater than SID ({sid:g} mm)",
                                 "a source-to-detector distance larger than the "
                                 "source-to-isocentre distance")
+    n_views = section.integer("views", minimum=1, maximum=L.MAX_VIEWS)
+    L.check_pose_memory(n_views, n_cols, n_rows, section.at("views"), section.at("columns"),
+                        section.at("rows"))
+    start_angle = section.angle("start_angle", 0.0)
+    if abs(start_angle) > math.radians(L.MAX_START_ANGLE_DEG) * (1 + 1e-12):
+        raise section.error("start_angle", f"{math.degrees(start_angle):.6g} deg is more than a "
+                            "turn", f"an angle from -{L.MAX_START_ANGLE_DEG:g} to "
+                            f"{L.MAX_START_ANGLE_DEG:g} deg")
     geometry = ScannerGeometry(
         **common, sid_mm=sid, sdd_mm=sdd,
-        n_views=section.integer("views", minimum=1),
+        n_views=n_views,
         arc=_arc(section, kind),
-        start_angle_rad=section.angle("start_angle", 0.0),
+        start_angle_rad=start_angle,
         clockwise=section.string("direction", "counterclockwise", choices=DIRECTIONS)
         == "clockwise",
         include_arc_end=section.boolean("include_arc_end", False),
-        table_feed_per_turn_mm=section.length("table_feed_per_turn", 0.0),
-        start_z_mm=section.length("start_z", 0.0),
+        table_feed_per_turn_mm=L.shift(section, "table_feed_per_turn"),
+        start_z_mm=L.shift(section, "start_z"),
     )
     if kind == "helical" and geometry.table_feed_per_turn_mm == 0.0:
         raise section.error("table_feed_per_turn", "a helical scan needs a table feed",
                             "a non-zero length per turn, or type cone for a circular scan")
+    if kind == "helical":
+        reach = abs(geometry.start_z_mm) + abs(geometry.table_feed_per_turn_mm) * \
+            geometry.arc_rad / (2 * math.pi)
+        if reach > L.MAX_LENGTH_MM:
+            raise section.error("table_feed_per_turn", f"the helix reaches z = {reach:.6g} mm, "
+                                "beyond 100 m", "a feed and arc that stay within "
+                                f"{L.MAX_LENGTH_MM:g} mm (100 m) of z = 0")
     try:
         poses = geometry.poses()
     except InputError as exc:  # pragma: no cover - every value is checked above
@@ -403,7 +434,12 @@ def _parse_poses(section: Section, common: dict) -> ScannerGeometry:
     if section.has("poses"):
         places: dict[tuple[int, str], Where] = {}
         arrays: dict[str, list] = {name: [] for name in fields}
-        for i, (item, where) in enumerate(section.sequence("poses")):
+        views = section.sequence("poses")
+        if len(views) > L.MAX_VIEWS:
+            raise section.error("poses", f"{len(views):,} views", f"at most {L.MAX_VIEWS:,} views")
+        L.check_pose_memory(len(views), common["n_cols"], common["n_rows"], section.at("poses"),
+                            section.at("columns"), section.at("rows"))
+        for i, (item, where) in enumerate(views):
             view = Section(item, where, section.length_unit)
             view.check_keys(fields, fields)
             for name in fields:
@@ -423,7 +459,8 @@ def _parse_poses(section: Section, common: dict) -> ScannerGeometry:
         pose_file = section.string("pose_file")
         base = Path(section.where.source).parent if section.where.source and \
             not section.where.source.startswith("<") else Path.cwd()
-        arrays, place = read_pose_file(base / pose_file, section.at("pose_file"), parallel)
+        arrays, place = read_pose_file(base / pose_file, section.at("pose_file"), parallel,
+                                       n_cols=common["n_cols"], n_rows=common["n_rows"])
     explicit = poses_from_arrays(
         detector_centre=arrays["detector_centre"], u_axis=arrays["u_axis"],
         v_axis=arrays["v_axis"], n_cols=common["n_cols"], pitch_u_mm=common["pitch_u_mm"],
