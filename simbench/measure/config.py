@@ -341,8 +341,11 @@ class ScatterConfig:
         ``"none"``, ``"centre"`` (requested SPR at the central cell of each view) or
         ``"thickness"`` (SPR growing with water-equivalent thickness).
     spr_at_centre : float
+        Centre model: scatter-to-primary ratio at the central cell, before the grid.
     max_spr : float
+        Thickness model: SPR reached behind very thick objects.
     thickness_scale_mm : float
+        Thickness model: water-equivalent thickness over which the SPR grows.
     kernel_fwhm_mm : float
         FWHM of the Gaussian scatter kernel on the detector.
     grid_transmission : float
