@@ -174,6 +174,16 @@ def test_monochromatic_beam_quality_is_closed_form():
     assert effective_energy_kev(beam, "water") == pytest.approx(60.0, abs=1e-3)
 
 
+@pytest.mark.parametrize("energy", [1.0, 1.5, 3.0, 800.0])
+def test_effective_energy_of_a_line_anywhere_on_the_tables(energy):
+    # A line's effective energy in water is its own energy (closed form: one energy, so
+    # ln 2 / HVL = mu(E)); water has no absorption edge above 1 keV, so the root is unique.
+    # At the ends of the tables and below aluminium's K edge (1.56 keV) this used to fail.
+    beam = monochromatic(energy)
+    assert effective_energy_kev(beam, "water") == pytest.approx(energy, rel=1e-4)
+    assert math.isfinite(beam.effective_energy_kev)  # aluminium: the highest root
+
+
 def test_effective_energy_between_hvl_bounds():
     spectrum = tube_spectrum(120.0, filtration=AL_25)
     # a filtered 120 kV beam has an effective energy below its mean energy and well above
