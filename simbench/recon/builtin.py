@@ -78,7 +78,7 @@ def cgls(acquisition, grid, *, iterations):
 
 @reconstructor("tv", options=[
     Option("iterations", int, 200, "primal-dual iterations", minimum=1, maximum=100000),
-    Option("weight", float, 0.001, "weight of the total variation", minimum=0.0,
+    Option("weight", float, 1.0, "weight of the total variation", minimum=0.0,
            maximum=1e6),
     _NONNEGATIVE])
 def tv(acquisition, grid, *, iterations, weight, nonnegative):
