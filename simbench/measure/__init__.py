@@ -465,6 +465,11 @@ def measure(path_lengths: np.ndarray, materials: Sequence | np.ndarray, physics:
         "noise": bool(noise),
         "energies_kev": energies.tolist(),
         "detected_air_photons_per_bin": detected.tolist(),
+        # what each output row's expected signal weighs per energy bin (air beam): the
+        # photon-equivalent signal of an energy-integrating detector, the counts of each
+        # threshold bin of a photon-counting one; a beam-hardening correction needs exactly this
+        "signal_weights_per_bin": (weights[:, :] if det.photon_counting
+                                   else weights[1:2]).tolist(),
         "air_photons": float(detected.sum()),
         "mean_detected_energy_kev": mean_energy,
         "sdd_mm": sdd,
