@@ -10,22 +10,20 @@ converge to the solution of the discrete problem.
 
 Why Joseph's method rather than Siddon's: Siddon's weights (exact chords through square
 pixels) change slope abruptly as a ray slides across a pixel corner, so its sinogram of a
-smooth object carries the pixel grid's staircase and its transpose prints moiré patterns into
-iterative reconstructions; Joseph's linear interpolation between voxel centres is the
-continuous image model of the grid and tracks the line integral of a smooth object more
-closely. Its walk also takes one fixed step per plane with no test of which plane comes next,
-which is the cheaper loop. Measured against the exact analytic tracer on a smooth phantom
-rasterized finely, the worst ray is off by 0.31 % of the peak (2-D fan beam, 0.5 mm pixels)
+smooth object carries the staircase of the pixel grid; Joseph's linear interpolation between
+voxel centres is a continuous model of the image and tracks the line integral of a smooth
+object more closely. Its walk also takes one fixed step per plane with no test of which
+plane comes next, which is the cheaper loop. Measured against the exact analytic tracer on
+a smooth phantom rasterized finely, the worst ray is off by 0.31 % of the peak (2-D fan beam, 0.5 mm pixels)
 and 0.53 % (3-D cone beam, 1 mm voxels) with Joseph's method, 0.58 % and 1.07 % with
 Siddon's chords through the same images (``tests/test_projectors.py``); on a 512 x 512 image
-and 720 views Joseph's forward projection ran 1.9 times as fast as the Siddon tracer
-(``benchmarks/bench_projectors.py``).
+and 720 views Joseph's forward projection ran 1.8 to 2.2 times as fast as the Siddon tracer
+(three runs of ``benchmarks/bench_projectors.py``).
 
 The numba kernels live in :mod:`simbench.recon.projector_kernels`.
 """
 
 from __future__ import annotations
-
 
 import numba
 import numpy as np
@@ -79,9 +77,10 @@ def _check_grid(grid, poses: Poses) -> None:
         raise InputError(_where("grid.shape"), f"a 2-D grid with nz = {shape[0]}", "nz = 1")
     spacing = np.asarray(grid.spacing_mm, dtype=np.float64)
     centre = np.asarray(grid.centre_mm, dtype=np.float64)
-    if spacing.shape != (3,) or not np.all(np.isfinite(spacing)) or np.any(spacing <= 0):
+    used = spacing[:grid.dimension] if spacing.shape == (3,) else spacing
+    if spacing.shape != (3,) or not np.all(np.isfinite(used)) or np.any(used <= 0):
         raise InputError(_where("grid.spacing_mm"), f"got {grid.spacing_mm!r}",
-                         "three positive voxel sizes (dx, dy, dz) in mm")
+                         "positive voxel sizes (dx, dy, dz) in mm (dz unused in 2-D)")
     if centre.shape != (3,) or not np.all(np.isfinite(centre)):
         raise InputError(_where("grid.centre_mm"), f"got {grid.centre_mm!r}",
                          "a finite (cx, cy, cz) in mm")
@@ -139,12 +138,13 @@ class Projector:
         self._col_u = np.ascontiguousarray(poses.col_u_mm, dtype=np.float64)
         self._row_v = np.ascontiguousarray(poses.row_v_mm, dtype=np.float64)
         nz, ny, nx = (int(s) for s in grid.shape)
+        self._n_axes = int(grid.dimension)
         # per axis x, y, z: voxels, flat-index step, size (mm), centre of voxel 0 (mm)
         self._n = (nx, ny, nz)
         self._stride = (1, nx, nx * ny)
-        self._spacing = tuple(float(s) for s in grid.spacing_mm)
+        dz = float(grid.spacing_mm[2]) if self._n_axes == 3 else 1.0  # 2-D: z not walked
+        self._spacing = (float(grid.spacing_mm[0]), float(grid.spacing_mm[1]), dz)
         self._first = tuple(float(grid.axis_mm(axis)[0]) for axis in "xyz")
-        self._n_axes = int(grid.dimension)
         # back projection owns slabs of whole planes along the outermost axis that has more
         # than one voxel (z, else y), contiguous in memory
         self._slab_axis = 2 if (self._n_axes == 3 and nz > 1) else 1
