@@ -85,6 +85,9 @@ def grid_from_options(poses: Poses, size: str | None, voxel: str | None,
         shape[2], shape[1] = values[0], values[1]
         if len(values) == 3:
             shape[0] = values[2]
+        if voxel is None:  # keep the field of view covered
+            width = base.shape[2] * base.spacing_mm[0]
+            spacing[0] = spacing[1] = width / max(shape[1], shape[2])
     if voxel is not None:
         values = numbers(voxel, "--voxel-size", float, 1e-4, 1e4, (1, 3) if dim == 3 else (1,))
         spacing = [values[0], values[0], values[0] if dim == 2 else spacing[2]] \
