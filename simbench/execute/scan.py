@@ -148,20 +148,15 @@ def run_scan(phantom, scanner, out: Path, *, seed: int = 0, noise: bool = True,
     if seed < 0:
         raise InputError(Where("<command line>", field="--seed"), f"seed must be >= 0, got {seed}",
                          "a non-negative integer")
-    plan = _ScanPlan(phantom, scanner, out, block_views)
+    plan = ScanPlan(phantom, scanner, out, block_views)
     with commit_folder(out, "scan") as staging:
-        state = _ScanState(plan, seed=seed, noise=noise,
-                           identity=scan_identity(phantom, scanner, realization),
-                           reference_energy_kev=reference_energy_kev)
-        with _ScanOutputs(staging, plan) as outputs:
-            for views in plan.blocks():
-                _scan_block(plan, state, views, outputs)
-            outputs.write_frames(state.calibration)
+        state = scan_into(staging, plan, seed=seed, noise=noise,
+                          identity=scan_identity(phantom, scanner, realization),
+                          reference_energy_kev=reference_energy_kev)
         warn_if_truncated(state.edges, scanner.source)
-        record = _scan_record(plan, state)
         from simbench.atomic import write_json
 
-        write_json(staging / "scan.json", record)
+        write_json(staging / "scan.json", scan_record(plan, state))
     return (f"wrote {out}/ (measured/counts, flat, dark, projections; truth/line_integrals at "
             f"{state.reference_kev:.1f} keV; scan.json; complete.json) — projections "
             f"{tuple(plan.shape)}, starved readings {state.starved}, trace "
@@ -173,10 +168,75 @@ def run_scan(phantom, scanner, out: Path, *, seed: int = 0, noise: bool = True,
 # ------------------------------------------------------------------------------------------
 
 
-class _ScanPlan:
-    """What a scan will do, fixed before any work: poses, sub-rays, blocks, cost checked."""
+def scan_into(folder: Path, plan: "ScanPlan", *, seed: int, noise: bool, identity: tuple,
+              reference_energy_kev: float | None = None, write_truth: bool = True,
+              lengths: "TraceCache | None" = None) -> "ScanState":
+    """Measure one scan block by block into ``folder`` (the caller commits it).
 
-    def __init__(self, phantom, scanner, out: Path, block_views: int | None):
+    Parameters
+    ----------
+    folder : Path
+        Where ``measured/`` (and ``truth/`` if ``write_truth``) are written; a staging folder.
+    plan : ScanPlan
+    seed : int
+    noise : bool
+    identity : tuple
+        The scan's identity: its random streams are ``rng_for(seed, *identity, "views", v0)``.
+    reference_energy_kev : float, optional
+        Energy of the truth line integrals (see :func:`run_scan`).
+    write_truth : bool
+        Write ``truth/path_lengths.npy`` and ``truth/line_integrals.npy``.
+    lengths : TraceCache, optional
+        Path lengths of every block, traced once and shared by the scans of one run (doses,
+        realizations); default: traced here.
+
+    Returns
+    -------
+    ScanState
+        Timings, starvation count, frames and measurement metadata of the first block.
+    """
+    lengths = lengths or TraceCache(plan, keep=False)
+    state = ScanState(plan, seed=seed, noise=noise, identity=identity,
+                      reference_energy_kev=reference_energy_kev)
+    with _ScanOutputs(folder, plan, write_truth) as outputs:
+        for views in plan.blocks():
+            _scan_block(plan, state, views, outputs, lengths)
+        outputs.write_frames(state.calibration)
+    return state
+
+
+class TraceCache:
+    """The path lengths of a scan's blocks: traced on first use, and kept for later scans of
+    the same plan when ``keep`` (the blocks of one run fit the memory budget)."""
+
+    def __init__(self, plan: "ScanPlan", *, keep: bool):
+        self.plan, self.keep, self.blocks, self.seconds = plan, keep, {}, 0.0
+
+    def get(self, views: np.ndarray) -> np.ndarray:
+        from simbench.trace import trace
+
+        key = int(views[0])
+        if key in self.blocks:
+            return self.blocks[key]
+        started = time.perf_counter()
+        lengths = trace(self.plan.phantom, self.plan.poses, cell_samples=self.plan.cells,
+                        spot_samples=self.plan.spot, views=views)
+        self.seconds += time.perf_counter() - started
+        if self.keep:
+            self.blocks[key] = lengths
+        return lengths
+
+
+class ScanPlan:
+    """What a scan will do, fixed before any work: poses, sub-rays, blocks, cost checked.
+
+    ``dose`` is a factor on the scanner's exposure (air counts or mAs).
+    """
+
+    def __init__(self, phantom, scanner, out: Path, block_views: int | None,
+                 dose: float = 1.0):
+        import dataclasses
+
         from simbench.geometry import cell_subsamples, focal_spot_points
 
         self.phantom, self.scanner = phantom, scanner
@@ -184,6 +244,14 @@ class _ScanPlan:
             raise InputError(Where("<command line>", field="-o"),
                              f"'{out}' exists and is not a folder", "a folder path")
         physics = self.physics = scanner.physics
+        if dose != 1.0:
+            exposure = physics.exposure
+            exposure = dataclasses.replace(
+                exposure, **({"air_counts": exposure.air_counts * dose}
+                             if exposure.air_counts is not None else
+                             {"mas_per_view": exposure.mas_per_view * dose}))
+            physics = self.physics = dataclasses.replace(physics, exposure=exposure)
+        self.dose = float(dose)
         poses = self.poses = scanner.geometry.poses()
         src = physics.source
         self.spot = self.cells = None
@@ -211,10 +279,10 @@ class _ScanPlan:
             yield np.arange(v0, min(self.poses.n_views, v0 + self.step))
 
 
-class _ScanState:
+class ScanState:
     """What carries over from block to block: frames, lag, truth energy, counts, timings."""
 
-    def __init__(self, plan: _ScanPlan, *, seed: int, noise: bool, identity: tuple,
+    def __init__(self, plan: ScanPlan, *, seed: int, noise: bool, identity: tuple,
                  reference_energy_kev: float | None):
         self.seed, self.noise, self.identity = seed, noise, identity
         self.reference_kev = None if reference_energy_kev is None else float(reference_energy_kev)
@@ -229,8 +297,9 @@ class _ScanState:
 class _ScanOutputs:
     """The scan's arrays, memory-mapped in the staging folder and filled block by block."""
 
-    def __init__(self, staging: Path, plan: _ScanPlan):
+    def __init__(self, staging: Path, plan: ScanPlan, write_truth: bool = True):
         self.staging, self.plan, self.files = staging, plan, {}
+        self.write_truth = write_truth
 
     def __enter__(self) -> "_ScanOutputs":
         return self
@@ -254,17 +323,16 @@ class _ScanOutputs:
             np.save(path, np.asarray(frame, dtype=np.float32), allow_pickle=False)
 
 
-def _scan_block(plan: _ScanPlan, state: _ScanState, views: np.ndarray,
-                outputs: _ScanOutputs) -> None:
-    """Trace, measure, check and write one block of views."""
+def _scan_block(plan: ScanPlan, state: ScanState, views: np.ndarray,
+                outputs: _ScanOutputs, cache: TraceCache) -> None:
+    """Trace (or take the traced), measure, check and write one block of views."""
     from simbench.materials import mu_table
     from simbench.measure import measure, rng_for
-    from simbench.trace import line_integrals, trace
+    from simbench.trace import line_integrals
 
-    started = time.perf_counter()
-    lengths = trace(plan.phantom, plan.poses, cell_samples=plan.cells, spot_samples=plan.spot,
-                    views=views)
-    state.timings["trace"] += time.perf_counter() - started
+    before = cache.seconds
+    lengths = cache.get(views)
+    state.timings["trace"] += cache.seconds - before
     centre = lengths.mean(axis=-1) if plan.subrays else lengths
     state.edges[:, views] = edge_columns(centre)
     started = time.perf_counter()
@@ -301,9 +369,10 @@ def _scan_block(plan: _ScanPlan, state: _ScanState, views: np.ndarray,
         block32 = block.astype(np.float32)
         _check_finite(block32, f"{name} (in float32)", plan.scanner.source, "exposure", views)
         target[(slice(None),) * view_axis + (views,)] = block32
-    outputs.array("path_lengths", "truth", np.float64,
-                  (plan.n_materials,) + plan.shape)[:, views] = centre
-    outputs.array("line_integrals", "truth", np.float64, plan.shape)[views] = truth
+    if outputs.write_truth:
+        outputs.array("path_lengths", "truth", np.float64,
+                      (plan.n_materials,) + plan.shape)[:, views] = centre
+        outputs.array("line_integrals", "truth", np.float64, plan.shape)[views] = truth
 
 
 def _check_finite(values: np.ndarray, what: str, source, field: str, views: np.ndarray) -> None:
@@ -315,7 +384,7 @@ def _check_finite(values: np.ndarray, what: str, source, field: str, views: np.n
                          "physically sensible values (see docs/physics.md for each field's range)")
 
 
-def _scan_record(plan: _ScanPlan, state: _ScanState) -> dict:
+def scan_record(plan: ScanPlan, state: ScanState) -> dict:
     """Everything ``scan.json`` says: settings, geometry, physics, truth, seeds, timings."""
     from simbench.measure import describe
 
@@ -334,6 +403,7 @@ def _scan_record(plan: _ScanPlan, state: _ScanState) -> dict:
         "geometry": plan.poses.to_record(),
         "physics": describe(plan.physics),
         "measurement": metadata,
+        "dose_factor": plan.dose,
         "truth": {"reference_energy_kev": state.reference_kev,
                   "mu_per_mm": {m.name: float(v) for m, v in zip(phantom.materials, state.mu_ref)},
                   "path_lengths": "averaged over the focal-spot and aperture sub-rays"
