@@ -206,3 +206,54 @@ def test_draw_phantom_writes_a_png(tmp_path):
                        pixels=64)
     assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification)
     assert [f.name for f in tmp_path.iterdir()] == ["c.png"]  # no temporary file left
+
+
+def _scattered_circles(n: int, seed: int = 5):
+    """n overlapping circles over a 100 mm square, half of them ROIs, with their arrays."""
+    rng = np.random.default_rng(seed)
+    centres = rng.uniform(-50, 50, (n, 2))
+    radii = rng.uniform(0.5, 6.0, n)
+    mus = rng.uniform(0.1, 1.0, n)
+    lines = [f"  - {{shape: circle, centre: [{x:.17g}, {y:.17g}], radius: {r:.17g}, "
+             f"mu: {m:.17g} /mm"
+             f"{', roi: true' if k % 2 else ''}}}\n"
+             for k, ((x, y), r, m) in enumerate(zip(centres, radii, mus))]
+    return two_d("".join(lines)), centres, radii, mus
+
+
+def test_scattered_objects_match_pointwise_membership():
+    # with one sample per pixel the value and label are those of the pixel centre: the last
+    # circle (x-cx)^2 + (y-cy)^2 <= r^2 containing it (closed-form membership, computed here
+    # with numpy independently of the kernels' per-row selection of objects)
+    p, centres, radii, mus = _scattered_circles(300)
+    grid = ImageGrid((1, 90, 110), (1.1, 1.1, 1.1), (0.3, -0.2, 0.0), 2)
+    x, y = np.meshgrid(grid.axis_mm("x"), grid.axis_mm("y"))
+    value = np.zeros_like(x)
+    label = np.zeros(x.shape, np.int32)
+    roi_number = 0
+    for k, ((cx, cy), r, m) in enumerate(zip(centres, radii, mus)):
+        inside = (x - cx) ** 2 + (y - cy) ** 2 <= r * r
+        value[inside] = m
+        if k % 2:
+            roi_number += 1
+        label[inside] = roi_number if k % 2 else 0
+    np.testing.assert_array_equal(rasterize(p, grid, 60.0, supersample=1), value)
+    np.testing.assert_array_equal(label_map(p, grid, supersample=1), label)
+
+
+def test_scattered_objects_in_three_d_match_pointwise_membership():
+    rng = np.random.default_rng(8)
+    centres = rng.uniform(-20, 20, (120, 3))
+    radii = rng.uniform(0.5, 4.0, 120)
+    p = parse_phantom_text("name: t\ndimension: 3\nobjects:\n" + "".join(
+        f"  - {{shape: sphere, centre: [{x:.17g}, {y:.17g}, {z:.17g}], radius: {r:.17g}, "
+        f"mu: {k + 1} /mm, "
+        "roi: true}\n" for k, ((x, y, z), r) in enumerate(zip(centres, radii))))
+    grid = ImageGrid((20, 24, 22), (2.0, 2.0, 2.0), (0.0, 0.0, 0.0), 3)
+    z, y, x = np.meshgrid(grid.axis_mm("z"), grid.axis_mm("y"), grid.axis_mm("x"),
+                          indexing="ij")
+    value = np.zeros_like(x)
+    for k, ((cx, cy, cz), r) in enumerate(zip(centres, radii)):
+        value[(x - cx) ** 2 + (y - cy) ** 2 + (z - cz) ** 2 <= r * r] = k + 1  # sphere test
+    np.testing.assert_array_equal(rasterize(p, grid, 60.0, supersample=1), value)
+    np.testing.assert_array_equal(label_map(p, grid), value.astype(np.int32))

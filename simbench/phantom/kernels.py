@@ -170,22 +170,41 @@ def rasterize_objects(xs, ys, zs, offx, offy, offz, hx, hy, hz, shape, centre, r
 
     Notes
     -----
-    Per cell, primitives whose bounding sphere misses the cell are skipped, and a convex
-    primitive containing all 8 corners contains the whole cell; when no primitive is left
-    undecided the cell is uniform and its centre value is exact.
+    Per row of cells, only primitives whose bounding sphere reaches the row's band are
+    considered; per cell, primitives whose bounding sphere misses the cell are skipped, and a
+    convex primitive containing all 8 corners contains the whole cell; when no primitive is
+    left undecided the cell is uniform and its centre value is exact.
     """
     nz, ny, nx = out.shape
     n_obj = shape.shape[0]
     n_sub = offx.shape[0] * offy.shape[0] * offz.shape[0]
+    reach_prism = np.sqrt(hx * hx + hy * hy)
+    reach_solid = np.sqrt(hx * hx + hy * hy + hz * hz)
     for row in prange(nz * ny):
         iz = row // ny
         iy = row % ny
-        cand = np.empty(n_obj, np.int64)  # one scratch list per row of cells
+        # the objects whose bounding sphere reaches this row's band of cells, in painting
+        # order: a cell's distance to a centre is at least its y (and z) distance, so no
+        # object that _cell_state could keep is left out
+        row_obj = np.empty(n_obj, np.int64)
+        n_row = 0
+        for k in range(n_obj):
+            code = shape[k]
+            if code == ELLIPSE_2D or code == RECTANGLE_2D or code == POLYGON_2D:
+                if abs(ys[iy] - centre[k, 1]) <= bound[k] + reach_prism:
+                    row_obj[n_row] = k
+                    n_row += 1
+            elif (abs(ys[iy] - centre[k, 1]) <= bound[k] + reach_solid
+                  and abs(zs[iz] - centre[k, 2]) <= bound[k] + reach_solid):
+                row_obj[n_row] = k
+                n_row += 1
+        cand = np.empty(n_row, np.int64)  # one scratch list per row of cells
         for ix in range(nx):
             cx, cy, cz = xs[ix], ys[iy], zs[iz]
             n_cand = 0
             undecided = False
-            for k in range(n_obj):
+            for i in range(n_row):
+                k = row_obj[i]
                 state = _cell_state(k, cx, cy, cz, hx, hy, hz, shape, centre, rotation, half,
                                     params, poly_start, poly_count, poly_xy, bound)
                 if state >= 0:
@@ -209,10 +228,11 @@ def rasterize_objects(xs, ys, zs, offx, offy, offz, hx, hy, hz, shape, centre, r
 
 
 @njit(cache=True)
-def _label_at(px, py, pz, shape, centre, rotation, half, params, mode, roi, poly_start,
-              poly_count, poly_xy, bound):
+def _label_at(px, py, pz, cand, n_cand, shape, centre, rotation, half, params, mode, roi,
+              poly_start, poly_count, poly_xy, bound):
     label = 0
-    for k in range(shape.shape[0]):
+    for i in range(n_cand):
+        k = cand[i]
         if contains(k, px, py, pz, shape, centre, rotation, half, params, poly_start,
                     poly_count, poly_xy, bound):
             if mode[k] == 0:
@@ -231,22 +251,36 @@ def label_objects(xs, ys, zs, offx, offy, offz, shape, centre, rotation, half, p
     not a ROI) and an ``add`` object that is a ROI sets it to its own.
     """
     nz, ny, nx = out.shape
-    for flat in prange(nz * ny * nx):
-        iz = flat // (ny * nx)
-        iy = (flat // nx) % ny
-        ix = flat % nx
-        first = -1
-        for a in range(offz.shape[0]):
-            for b in range(offy.shape[0]):
-                for c in range(offx.shape[0]):
-                    lab = _label_at(xs[ix] + offx[c], ys[iy] + offy[b], zs[iz] + offz[a],
-                                    shape, centre, rotation, half, params, mode, roi,
-                                    poly_start, poly_count, poly_xy, bound)
-                    if first == -1:
-                        first = lab
-                    elif lab != first:
-                        first = 0
-        out[iz, iy, ix] = first
+    n_obj = shape.shape[0]
+    spread_y = np.max(np.abs(offy))
+    spread_z = np.max(np.abs(offz))
+    for row in prange(nz * ny):
+        iz = row // ny
+        iy = row % ny
+        # objects that can contain a sub-sample of this row (contains() refuses points
+        # farther than the bounding radius), in painting order
+        cand = np.empty(n_obj, np.int64)
+        n_cand = 0
+        for k in range(n_obj):
+            code = shape[k]
+            prism = code == ELLIPSE_2D or code == RECTANGLE_2D or code == POLYGON_2D
+            if abs(ys[iy] - centre[k, 1]) <= bound[k] + spread_y and (
+                    prism or abs(zs[iz] - centre[k, 2]) <= bound[k] + spread_z):
+                cand[n_cand] = k
+                n_cand += 1
+        for ix in range(nx):
+            first = -1
+            for a in range(offz.shape[0]):
+                for b in range(offy.shape[0]):
+                    for c in range(offx.shape[0]):
+                        lab = _label_at(xs[ix] + offx[c], ys[iy] + offy[b], zs[iz] + offz[a],
+                                        cand, n_cand, shape, centre, rotation, half, params,
+                                        mode, roi, poly_start, poly_count, poly_xy, bound)
+                        if first == -1:
+                            first = lab
+                        elif lab != first:
+                            first = 0
+            out[iz, iy, ix] = first
 
 
 @njit(parallel=True, cache=True)

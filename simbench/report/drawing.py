@@ -2,15 +2,25 @@
 
 from __future__ import annotations
 
+import math
+import warnings
 from pathlib import Path
 
 import numpy as np
 
+from simbench.budget import check_bytes
+from simbench.errors import InputError, Where
 from simbench.report.figures import finish_figure
 from simbench.geometry.grid import ImageGrid
 from simbench.phantom.compiled import PRISM_CODES, Phantom
 from simbench.phantom.rasterize import rasterize
 
+#: Range of the ``pixels`` setting: the panels are drawn about 670 pixels wide (5.6 inches at
+#: 120 dpi), so more than 2048 adds memory and time but nothing visible.
+MIN_PIXELS, MAX_PIXELS = 8, 2048
+#: Bytes per panel pixel while drawing: the float64 image, the rasterizer's work array and
+#: matplotlib's resampled RGBA copy (estimate).
+BYTES_PER_PIXEL = 32
 
 
 def phantom_extent_mm(phantom: Phantom) -> tuple[np.ndarray, np.ndarray]:
@@ -57,7 +67,7 @@ def draw_phantom(phantom: Phantom, path: str | Path, *, energy_kev: float = 60.0
     energy_kev : float
         Energy at which mu is shown, keV.
     pixels : int
-        Pixels along the longer side of each panel.
+        Pixels along the longer side of each panel, from 8 to 2048.
 
     Returns
     -------
@@ -69,7 +79,14 @@ def draw_phantom(phantom: Phantom, path: str | Path, *, energy_kev: float = 60.0
     2-D phantoms get one panel; 3-D phantoms three central slices through the centre of the
     phantom's bounds: axial (x-y), coronal (x-z) and sagittal (y-z). Panels are drawn with
     ``origin='lower'`` and axes in mm; named objects whose bounds cross a slice are labelled at
-    their centres. A scale bar, a colour bar in 1/mm and a one-line caution are added.
+    their centres (names are drawn as plain text, never as math). A scale bar, a colour bar in
+    1/mm and a one-line caution are added.
+
+    Raises
+    ------
+    InputError
+        ``pixels`` outside 8 to 2048, an energy that is not a positive number, or panels whose
+        memory estimate is over the budget.
     """
     import matplotlib
 
@@ -77,15 +94,29 @@ def draw_phantom(phantom: Phantom, path: str | Path, *, energy_kev: float = 60.0
     import matplotlib.pyplot as plt
     from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
 
-    if not isinstance(pixels, (int, np.integer)) or pixels < 8:
-        raise ValueError(f"pixels must be an integer >= 8, got {pixels!r}")
+    if isinstance(pixels, bool) or not isinstance(pixels, (int, np.integer)) or not (
+            MIN_PIXELS <= pixels <= MAX_PIXELS):
+        raise InputError(Where("<arguments>", field="pixels"),
+                         f"must be a whole number from {MIN_PIXELS} to {MAX_PIXELS}, got "
+                         f"{pixels!r}", f"an image size from {MIN_PIXELS} to {MAX_PIXELS} pixels")
+    try:
+        energy_ok = math.isfinite(float(energy_kev)) and float(energy_kev) > 0
+    except (TypeError, ValueError):
+        energy_ok = False
+    if not energy_ok:
+        raise InputError(Where("<arguments>", field="energy_kev"),
+                         f"must be a positive energy in keV, got {energy_kev!r}",
+                         "an energy such as 60 (keV)")
     low, high = phantom_extent_mm(phantom)
     margin = 0.05 * float(np.max(high - low))
     low, high = low - margin, high + margin
     mid = (low + high) / 2.0
     span = high - low
     pixel_mm = float(np.max(span[:phantom.dimension])) / pixels
-    n = np.maximum(np.ceil(span / pixel_mm).astype(int), 1)
+    n = np.minimum(np.maximum(np.ceil(span / pixel_mm).astype(int), 1), pixels + 1)
+    panels_pixels = n[0] * n[1] + (n[0] * n[2] + n[1] * n[2] if phantom.dimension == 3 else 0)
+    check_bytes(float(panels_pixels) * BYTES_PER_PIXEL, Where("<arguments>", field="pixels"),
+                f"drawing {int(panels_pixels):,} pixels", "fewer pixels")
     # (label, horizontal axis, vertical axis) per panel
     panels = [("axial (z = {:.1f} mm)".format(mid[2]), 0, 1)]
     if phantom.dimension == 3:
@@ -136,11 +167,17 @@ def draw_phantom(phantom: Phantom, path: str | Path, *, energy_kev: float = 60.0
             stacked = sum(1 for s in spots if np.hypot(s[0] - spot[0], s[1] - spot[1]) < near)
             spots.append(spot)
             ax.annotate(label, spot, xytext=(0, -7 * stacked), textcoords="offset points",
-                        color="tab:orange", fontsize=6, ha="center", va="center")
+                        color="tab:orange", fontsize=6, ha="center", va="center",
+                        parse_math=False)
         bar = _nice_length(extent[1] - extent[0])
         ax.add_artist(AnchoredSizeBar(ax.transData, bar, f"{bar:g} mm", "lower right",
                                       pad=0.4, color="white", frameon=False, size_vertical=0))
         fig.colorbar(shown, ax=ax, fraction=0.046, pad=0.02, label="mu (1/mm)")
-    fig.suptitle(f"{phantom.name}: truth mu at {energy_kev:g} keV", fontsize=11)
+    fig.suptitle(f"{phantom.name}: truth mu at {energy_kev:g} keV", fontsize=11,
+                 parse_math=False)
     fig.get_layout_engine().set(h_pad=0.25)
-    return finish_figure(fig, path, dpi=120)
+    with warnings.catch_warnings():
+        # names in scripts the font lacks are drawn as boxes: a drawing, not an error
+        warnings.filterwarnings("ignore", message="Glyph .* missing from")
+        warnings.filterwarnings("ignore", message="Matplotlib currently does not support")
+        return finish_figure(fig, path, dpi=120)
