@@ -29,6 +29,7 @@ EXAMPLES = {
     "demo": "simbench demo -o simbench-demo",
     "reconstruct": "simbench reconstruct scan-out --algorithm fbp --option window=hann -o recon-out",
     "algorithms": "simbench algorithms",
+    "run": "simbench run quickstart -o quickstart-run",
 }
 
 
@@ -204,6 +205,16 @@ def cmd_reconstruct(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_run(args: argparse.Namespace) -> int:
+    from simbench.execute.run import run_scenario
+    from simbench.scenario import load_scenario
+
+    scenario = load_scenario(resolve(args.scenario, "scenarios"))
+    run_scenario(scenario, Path(args.output), allow_code=args.allow_code,
+                 progress=not args.quiet and sys.stderr.isatty())
+    return 0
+
+
 def cmd_algorithms(args: argparse.Namespace) -> int:
     from simbench.recon.registry import list_reconstructors
 
@@ -241,6 +252,7 @@ def cmd_list(args: argparse.Namespace) -> int:
 
     print("shipped phantoms:  " + ", ".join(shipped_files("phantoms")))
     print("shipped scanners:  " + ", ".join(shipped_files("scanners")))
+    print("shipped scenarios: " + ", ".join(shipped_files("scenarios")))
     print("catalogue materials: " + ", ".join(material_names()))
     return 0
 
@@ -434,6 +446,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--grid-centre", default=None, metavar="X,Y[,Z]", help="grid centre in mm")
     p.add_argument("-o", "--output", required=True, metavar="DIR", help="output folder")
     p.set_defaults(run=cmd_reconstruct)
+
+    p = command("run", "Run a scenario: scan, reconstruct with every algorithm, score against "
+                       "the exact truth, and write metrics.json and report.html in one folder.")
+    p.add_argument("scenario", help="scenario file or shipped scenario name")
+    p.add_argument("-o", "--output", required=True, metavar="DIR", help="output folder")
+    p.add_argument("--allow-code", action="store_true",
+                   help="allow the module paths and programs named in the scenario file to run")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.set_defaults(run=cmd_run)
 
     p = command("algorithms", "List every reconstructor found: built-in, installed through "
                               "the simbench.reconstructors entry points, with stage and options.")

@@ -103,6 +103,13 @@ def grid_from_options(poses: Poses, size: str | None, voxel: str | None,
 
 
 def check_reconstruction_cost(acquisition, grid: ImageGrid) -> None:
+    """Refuse a reconstruction of ``acquisition`` on ``grid`` over the memory budget
+    (:func:`check_reconstruction_memory`)."""
+    arrays = [a for a in (acquisition.projections, acquisition.counts) if a is not None]
+    check_reconstruction_memory(float(max((a.size for a in arrays), default=0)), grid)
+
+
+def check_reconstruction_memory(readings: float, grid: ImageGrid) -> None:
     """Refuse a reconstruction whose image and working copies exceed the memory budget.
 
     The estimate: the image in float64 four times over (iterative methods hold the image,
@@ -112,8 +119,6 @@ def check_reconstruction_cost(acquisition, grid: ImageGrid) -> None:
     from simbench.budget import check_bytes
 
     voxels = float(np.prod(grid.shape))
-    arrays = [a for a in (acquisition.projections, acquisition.counts) if a is not None]
-    readings = float(max((a.size for a in arrays), default=0))
     check_bytes(32.0 * voxels + 24.0 * readings, Where("<command line>", field="--grid-size"),
                 f"reconstructing a {' x '.join(map(str, grid.shape))} grid from "
                 f"{int(readings)} readings", "a smaller grid (--grid-size, --voxel-size)")

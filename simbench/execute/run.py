@@ -1,0 +1,447 @@
+"""One scenario, end to end: trace once, measure per dose and realization, reconstruct with
+every algorithm, score against the exact truth, report.
+
+The run folder (committed whole by :func:`simbench.folders.commit_folder`, kind ``run``)::
+
+    OUT/
+      scenario.resolved.yaml       every setting with its default filled in, seeds, versions
+      truth/image.npy              mu (1/mm) at the reference energy on the grid, float32
+      truth/labels.npy             ROI labels (0 outside every ROI), int32
+      truth/line_integrals.npy     exact line integrals at the reference energy, float64
+      measured/dose-<d>/realization-<r>/{projections,counts,flat,dark}.npy
+      recon/<algorithm>/dose-<d>/realization-<r>.npy    float32 images
+      metrics.json                 {algorithms: {name: {doses: {d: {metrics, rois, curves,
+                                   seeds}}}}, run: {...}}
+      report.html, figures/        the human report
+      complete.json                written last
+
+Random streams come from the identity ``("run", scenario name, "dose", d, "realization",
+r)`` and the root seed, never from the order of execution: the same seed gives the same
+bits whatever runs first.
+"""
+
+from __future__ import annotations
+
+import json
+import time
+from pathlib import Path
+
+import numpy as np
+
+import simbench
+from simbench.errors import InputError, Where
+
+STAGES = ("trace", "measure", "reconstruct", "score", "report")
+
+
+def dose_label(dose: float) -> str:
+    """The folder name of a dose level: ``dose-1``, ``dose-0.25``."""
+    return f"dose-{dose:g}"
+
+
+def run_identity(scenario, dose: float, realization: int) -> tuple:
+    """The identity of one measurement of a run (its random stream's key)."""
+    return ("run", scenario.name, "dose", f"{dose:g}", "realization", int(realization))
+
+
+def resolve_algorithms(scenario, allow_code: bool) -> list:
+    """Every algorithm of a scenario as a checked reconstructor, before any work.
+
+    Returns
+    -------
+    list of (AlgorithmSpec, Reconstructor, checked options)
+    """
+    from simbench.recon.external import external_reconstructor
+    from simbench.recon.registry import find_reconstructor
+
+    out = []
+    for spec in scenario.algorithms:
+        if spec.command is not None:
+            if not allow_code:
+                raise InputError(spec.where.child("command"),
+                                 f"'{spec.name}' runs the program '{spec.command}', and "
+                                 "programs named in a file run only when allowed",
+                                 "pass --allow-code on the command line if you trust this file")
+            reconstructor = external_reconstructor(spec.name, spec.command, stage=spec.stage,
+                                                   time_limit_s=spec.time_limit_s)
+        else:
+            reconstructor = find_reconstructor(spec.use or spec.name, allow_code=allow_code,
+                                               where=spec.where.child("use" if spec.use
+                                                                      else "name"))
+        checked = reconstructor.check_options(spec.options, spec.where.child("options"))
+        out.append((spec, reconstructor, checked))
+    return out
+
+
+def detected_effective_energy_kev(energies_kev, weights, material: str = "water") -> float:
+    """Effective energy of a detected spectrum: the monoenergetic beam with the same first
+    half-value layer in ``material``, the layer weighted by the detector's signal.
+
+    Notes
+    -----
+    Solves ``sum_E w(E) exp(-mu(E) t) = sum_E w(E) / 2`` for the half-value layer ``t``, then
+    ``mu(E_eff) = ln 2 / t`` (the usual definition of effective energy, with the detector's
+    signal weights in place of air kerma).
+    """
+    from scipy.optimize import brentq
+
+    from simbench.materials import get_material, mu_table
+    from simbench.materials.attenuation import VALID_ENERGY_RANGE_KEV
+
+    energies = np.asarray(energies_kev, dtype=np.float64)
+    w = np.asarray(weights, dtype=np.float64)
+    keep = w > 0
+    energies, w = energies[keep], w[keep]
+    spec = get_material(material)
+    mu = mu_table([spec], energies)[0]
+    half = lambda t: float(w @ np.exp(-mu * t)) / w.sum() - 0.5  # noqa: E731
+    hvl = brentq(half, 0.0, 50.0 * np.log(2.0) / mu.min())
+    target = np.log(2.0) / hvl
+    lo, hi = VALID_ENERGY_RANGE_KEV
+    grid = np.geomspace(max(lo, energies.min()), min(hi, energies.max()), 801)
+    values = mu_table([spec], grid)[0]
+    index = int(np.argmin(np.abs(values - target)))
+    return float(round(grid[index], 1))
+
+
+class RunPlan:
+    """Everything a run will do, checked and estimated before any work."""
+
+    def __init__(self, scenario, out: Path, *, allow_code: bool):
+        from simbench.execute.reconstruct import check_reconstruction_memory, grid_from_options
+        from simbench.execute.scan import ScanPlan
+
+        self.scenario, self.out = scenario, out
+        self.algorithms = resolve_algorithms(scenario, allow_code)
+        self.scans = {dose: ScanPlan(scenario.phantom, scenario.scanner, out, None, dose)
+                      for dose in scenario.doses}
+        first = self.scans[scenario.doses[0]]
+        self.poses = first.poses
+        g = scenario.grid
+        self.grid = grid_from_options(self.poses, g["size"], g["voxel_size"], g["centre"])
+        check_reconstruction_memory(float(np.prod(self.poses.projection_shape)), self.grid)
+        from simbench.budget import check_bytes
+
+        # the reconstructions of one algorithm and dose are held for scoring (noise spectra
+        # need every realization), with the truth and labels
+        voxels = float(np.prod(self.grid.shape))
+        check_bytes(voxels * 8.0 * (scenario.realizations + 4),
+                    scenario.wheres.get("realizations", Where(scenario.source)),
+                    f"{scenario.realizations} realizations of a "
+                    f"{' x '.join(map(str, self.grid.shape))} image", "fewer realizations or a "
+                    "smaller grid")
+        self.needs_counts = any(rec.stage == "counts" for _, rec, _ in self.algorithms)
+        self.total_steps = len(scenario.doses) * scenario.realizations * (
+            1 + len(self.algorithms))
+
+
+def run_scenario(scenario, out: Path, *, allow_code: bool = False, progress: bool = True,
+                 say=print) -> dict:
+    """Run a scenario into the folder ``out`` (committed whole).
+
+    Parameters
+    ----------
+    scenario : simbench.scenario.Scenario
+    out : Path
+    allow_code : bool
+        Allow module paths and external programs named in the scenario file.
+    progress : bool
+        Show a progress bar on standard error.
+    say : callable
+        Receives the closing summary lines.
+
+    Returns
+    -------
+    dict
+        The content of ``metrics.json``.
+    """
+    from simbench.folders import commit_folder
+
+    plan = RunPlan(scenario, out, allow_code=allow_code)
+    started = time.perf_counter()
+    timings = dict.fromkeys(STAGES, 0.0)
+    with commit_folder(out, "run") as staging, _progress(plan, progress) as bar:
+        truth = _write_truth(staging, plan, timings)
+        results = _measure_reconstruct_score(staging, plan, truth, timings, bar)
+        metrics = _metrics_record(plan, truth, results, timings, started)
+        from simbench.atomic import write_json
+
+        write_json(staging / "metrics.json", metrics)
+        _write_resolved(staging, plan, truth)
+        t0 = time.perf_counter()
+        from simbench.report.run_report import write_report
+
+        write_report(staging, metrics)
+        timings["report"] = time.perf_counter() - t0
+        metrics["run"]["timings_s"] = {k: round(v, 3) for k, v in timings.items()}
+        metrics["run"]["wall_time_s"] = round(time.perf_counter() - started, 3)
+        write_json(staging / "metrics.json", metrics)
+    say(f"wrote {out}/ — {len(plan.algorithms)} algorithm(s) x {len(scenario.doses)} dose(s) x "
+        f"{scenario.realizations} realization(s) in {metrics['run']['wall_time_s']:.1f} s")
+    say(f"report: {out / 'report.html'}")
+    return metrics
+
+
+class _NoBar:
+    def update(self, n: int = 1) -> None:
+        pass
+
+    def set_postfix_str(self, text: str) -> None:
+        pass
+
+
+class _progress:
+    """A tqdm progress bar over the run's steps (or nothing)."""
+
+    def __init__(self, plan: RunPlan, show: bool):
+        self.plan, self.show, self.bar = plan, show, None
+
+    def __enter__(self):
+        if not self.show:
+            return _NoBar()
+        from tqdm import tqdm
+
+        self.bar = tqdm(total=self.plan.total_steps, unit="step", desc=self.plan.scenario.name,
+                        leave=False, dynamic_ncols=True)
+        return self.bar
+
+    def __exit__(self, *exc) -> None:
+        if self.bar is not None:
+            self.bar.close()
+
+
+class _Truth:
+    """The truth of a run: image, labels, reference energy, HU scale, field of view."""
+
+
+def _write_truth(staging: Path, plan: RunPlan, timings: dict) -> _Truth:
+    from simbench.execute.scan import TraceCache, scan_into
+    from simbench.materials import get_material, mu_table
+    from simbench.phantom import rasterize
+    from simbench.phantom.rasterize import label_map
+
+    scenario = plan.scenario
+    truth = _Truth()
+    first = plan.scans[scenario.doses[0]]
+    # path lengths are traced once and shared by every dose and realization when they fit
+    from simbench.budget import memory_budget_bytes
+
+    n_sub = (1 if first.spot is None else len(first.spot)) * \
+        (1 if first.cells is None else len(first.cells))
+    traced_bytes = 8.0 * first.n_materials * n_sub * float(np.prod(first.shape))
+    keep = traced_bytes < 0.25 * memory_budget_bytes()[0]
+    truth.cache = TraceCache(first, keep=keep)
+    # the reference energy: given, or the effective energy in water of the detected spectrum,
+    # which needs the first measurement's spectrum weights (measured noise-free, not written)
+    import tempfile
+
+    with tempfile.TemporaryDirectory(dir=staging) as tmp:
+        state = scan_into(Path(tmp), _one_view(first), seed=0, noise=False,
+                          identity=("reference",), reference_energy_kev=60.0,
+                          write_truth=False)
+        weights = state.metadata["signal_weights_per_bin"]
+        energies = state.metadata["energies_kev"]
+    if scenario.reference_energy_kev is not None:
+        truth.energy = float(scenario.reference_energy_kev)
+    else:
+        truth.energy = detected_effective_energy_kev(energies, np.sum(weights, axis=0))
+    materials = [get_material("water"), get_material("air")]
+    truth.mu_water, truth.mu_air = (float(v) for v in mu_table(materials, [truth.energy])[:, 0])
+    truth.image = rasterize(scenario.phantom, plan.grid, truth.energy)
+    truth.labels = label_map(scenario.phantom, plan.grid).astype(np.int32)
+    from simbench.geometry import field_of_view_radius_mm
+
+    radius = field_of_view_radius_mm(plan.poses)
+    x, y = np.meshgrid(plan.grid.axis_mm("x"), plan.grid.axis_mm("y"))
+    fov = np.hypot(x, y) <= (radius if np.isfinite(radius) and radius > 0 else np.inf)
+    truth.fov = np.broadcast_to(fov, plan.grid.image_shape) if plan.grid.dimension == 3 else fov
+    (staging / "truth").mkdir()
+    np.save(staging / "truth" / "image.npy", truth.image.astype(np.float32))
+    np.save(staging / "truth" / "labels.npy", truth.labels)
+    truth.weights, truth.energies = weights, energies
+    return truth
+
+
+def _one_view(plan):
+    """A plan of the first view only (the reference-energy probe)."""
+    import copy
+
+    probe = copy.copy(plan)
+    probe.poses = plan.poses.select([0])
+    probe.shape = probe.poses.projection_shape
+    probe.step = 1
+    return probe
+
+
+def _measure_reconstruct_score(staging: Path, plan: RunPlan, truth: _Truth, timings: dict,
+                               bar) -> dict:
+    from simbench.execute.scan import TraceCache, scan_into
+    from simbench.recon.contract import Acquisition
+    from simbench.scenario.scoring import ScoringContext, score_realizations
+
+    scenario = plan.scenario
+    context = ScoringContext(truth.image, truth.labels, plan.grid, scenario.phantom,
+                             scenario.rois, truth.mu_water, truth.mu_air, truth.fov)
+    results: dict = {spec.name: {} for spec, _, _ in plan.algorithms}
+    seeds: dict = {}
+    exact = None
+    for dose in scenario.doses:
+        scan = plan.scans[dose]
+        cache = truth.cache
+        if cache.plan is not scan:  # same geometry, other exposure: share the traced blocks
+            shared = TraceCache(scan, keep=cache.keep)
+            shared.blocks = cache.blocks
+            cache = shared
+        images = {spec.name: [] for spec, _, _ in plan.algorithms}
+        walls = {spec.name: [] for spec, _, _ in plan.algorithms}
+        peaks = {spec.name: [] for spec, _, _ in plan.algorithms}
+        reproj = {spec.name: [] for spec, _, _ in plan.algorithms}
+        for r in range(scenario.realizations):
+            folder = staging / "measured" / dose_label(dose) / f"realization-{r}"
+            folder.mkdir(parents=True)
+            identity = run_identity(scenario, dose, r)
+            t0 = time.perf_counter()
+            write_truth = exact is None
+            state = scan_into(folder, scan, seed=scenario.seed, noise=True, identity=identity,
+                              reference_energy_kev=truth.energy, write_truth=write_truth,
+                              lengths=cache)
+            timings["measure"] += time.perf_counter() - t0 - state.timings["trace"]
+            timings["trace"] += state.timings["trace"]
+            if write_truth:
+                (folder / "truth" / "line_integrals.npy").rename(
+                    staging / "truth" / "line_integrals.npy")
+                (folder / "truth" / "path_lengths.npy").unlink()
+                (folder / "truth").rmdir()
+                exact = np.load(staging / "truth" / "line_integrals.npy", mmap_mode="r")
+            seeds.setdefault(dose_label(dose), []).append(
+                {"realization": r, "root_seed": scenario.seed, "identity": list(identity)})
+            arrays = {name: np.load(folder / "measured" / f"{name}.npy", mmap_mode="r")
+                      for name in ("projections", "counts", "flat", "dark")}
+            if not plan.needs_counts:
+                for name in ("counts", "flat", "dark"):
+                    (folder / "measured" / f"{name}.npy").unlink()
+            record = {"measurement": state.metadata, "truth": {
+                "reference_energy_kev": truth.energy}, "physics": state.metadata.get("physics")}
+            acquisition = Acquisition(plan.poses, metadata=record, source=str(folder),
+                                      **arrays)
+            bar.update(1)
+            for spec, reconstructor, options in plan.algorithms:
+                bar.set_postfix_str(f"{spec.name}, {dose_label(dose)}, realization {r}")
+                image, seconds, peak = _reconstruct(reconstructor, acquisition, plan.grid,
+                                                    options)
+                timings["reconstruct"] += seconds
+                target = staging / "recon" / spec.name / dose_label(dose)
+                target.mkdir(parents=True, exist_ok=True)
+                np.save(target / f"realization-{r}.npy", image)
+                images[spec.name].append(image)
+                walls[spec.name].append(seconds)
+                peaks[spec.name].append(peak)
+                if "projection_error" in scenario.metrics:
+                    reproj[spec.name].append(_reprojection_rmse(plan, image, exact))
+                bar.update(1)
+        t0 = time.perf_counter()
+        for spec, _, _ in plan.algorithms:
+            results[spec.name][dose_label(dose)] = dict(
+                score_realizations(images[spec.name], context, scenario.metrics,
+                                   wall_times=walls[spec.name], peak_bytes=peaks[spec.name],
+                                   reprojection_errors=reproj[spec.name]),
+                seeds=seeds[dose_label(dose)])
+        timings["score"] += time.perf_counter() - t0
+    return results
+
+
+def _reconstruct(reconstructor, acquisition, grid, options):
+    import resource
+
+    before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+    t0 = time.perf_counter()
+    image = reconstructor.run(acquisition, grid, options)
+    seconds = time.perf_counter() - t0
+    peak = max(0, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024 - before)
+    return image, seconds, peak
+
+
+def _reprojection_rmse(plan: RunPlan, image: np.ndarray, exact) -> float:
+    from simbench.recon.projectors import projector
+    from simbench.score.streaks import projection_rmse
+
+    if not hasattr(plan, "_projector"):
+        plan._projector = projector(plan.poses, plan.grid)
+    return float(projection_rmse(plan._projector.forward(image), np.asarray(exact)))
+
+
+def _metrics_record(plan: RunPlan, truth: _Truth, results: dict, timings: dict,
+                    started: float) -> dict:
+    scenario = plan.scenario
+    return {
+        "format_version": 1,
+        "scenario": {"name": scenario.name, "file": scenario.source,
+                     "description": scenario.description},
+        "phantom": {"name": scenario.phantom.name, "roi_names": list(scenario.phantom.roi_names)},
+        "scanner": {"name": scenario.scanner.name},
+        "reference_energy_kev": truth.energy,
+        "hu_scale": {"mu_water_per_mm": truth.mu_water, "mu_air_per_mm": truth.mu_air},
+        "grid": {"shape": list(plan.grid.shape), "spacing_mm": list(plan.grid.spacing_mm),
+                 "centre_mm": list(plan.grid.centre_mm), "dimension": plan.grid.dimension},
+        "doses": [dose_label(d) for d in scenario.doses],
+        "dose_factors": list(scenario.doses),
+        "realizations": scenario.realizations,
+        "seed": scenario.seed,
+        "rois": scenario.rois,
+        "algorithms": {spec.name: {"reconstructor": rec.name, "origin": rec.origin,
+                                   "stage": rec.stage, "options": options,
+                                   "doses": results[spec.name]}
+                       for spec, rec, options in plan.algorithms},
+        "run": {"simbench_version": simbench.__version__,
+                "started": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+                "timings_s": {k: round(v, 3) for k, v in timings.items()},
+                "wall_time_s": round(time.perf_counter() - started, 3)},
+        "caution": simbench.CAUTION,
+    }
+
+
+def _write_resolved(staging: Path, plan: RunPlan, truth: _Truth) -> None:
+    import importlib.metadata
+
+    import yaml
+
+    scenario = plan.scenario
+    versions = {}
+    for package in ("numpy", "scipy", "numba", "xraylib", "pyyaml", "matplotlib"):
+        try:
+            versions[package] = importlib.metadata.version(package)
+        except importlib.metadata.PackageNotFoundError:
+            versions[package] = "not installed"
+    resolved = {
+        "name": scenario.name,
+        "description": scenario.description,
+        "phantom": scenario.phantom_ref if scenario.phantom_ref != "inline" else
+        str(scenario.phantom.source),
+        "phantom_name": scenario.phantom.name,
+        "scanner": scenario.scanner_ref if scenario.scanner_ref != "inline" else
+        str(scenario.scanner.source),
+        "scanner_name": scenario.scanner.name,
+        "scanner_geometry": scenario.scanner.geometry.resolved(),
+        "grid": {"size": list(plan.grid.shape[::-1][:plan.grid.dimension]),
+                 "voxel_size": [f"{v!r} mm" for v in plan.grid.spacing_mm],
+                 "centre": [f"{v!r} mm" for v in plan.grid.centre_mm]},
+        "reference_energy": f"{truth.energy!r} keV",
+        "reference_energy_from": "the scenario file" if scenario.reference_energy_kev
+        is not None else "the effective energy in water of the detected spectrum",
+        "seed": scenario.seed,
+        "realizations": scenario.realizations,
+        "doses": list(scenario.doses),
+        "algorithms": [{"name": spec.name, "use": rec.name, "stage": rec.stage,
+                        "origin": rec.origin, "options": options}
+                       | ({"command": spec.command, "time_limit": f"{spec.time_limit_s:g} s"}
+                          if spec.command else {})
+                       for spec, rec, options in plan.algorithms],
+        "metrics": list(scenario.metrics),
+        "rois": scenario.rois,
+        "tolerances": {k: (f"{v * 100:g} %" if rel else v)
+                       for k, (v, rel) in scenario.tolerances.items()},
+        "versions": {"simbench": simbench.__version__, **versions},
+    }
+    text = yaml.safe_dump(resolved, sort_keys=False, allow_unicode=True)
+    (staging / "scenario.resolved.yaml").write_text(
+        "# every setting of this run, defaults filled in\n" + text, encoding="utf-8")
