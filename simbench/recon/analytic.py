@@ -13,7 +13,8 @@ the two measurements of one line sum to 1 (:func:`redundancy_weights`):
   such as a quarter-cell offset, counts as centred; the few cells past the mirror of the
   short edge, measured once, get ``rho = 1``); an offset (half-fan) detector gets a smooth
   ``sin^2`` ramp across the region seen from both sides (Wang 2002), so the whole field of
-  view of the wider side is reconstructed;
+  view of the wider side is reconstructed (the filtered projections are kept on zero columns
+  added past the short side, where the ramp filter's tails still carry signal);
 * less than a turn but at least 180 degrees plus the fan angle: Parker weights (Parker 1982)
   for the arc actually scanned (the over-scan form, with ``delta = (arc - pi) / 2`` in place
   of the half fan angle); parallel beams are the case of zero fan angle.
@@ -53,7 +54,7 @@ OPTIONS = {"filter": "ramp", "cutoff": 1.0}
 CENTRED_CELLS = 2.0
 #: geometric tolerance on the poses, relative to the scan's size
 _POSE_TOLERANCE = 1e-6
-#: bytes of filtered projections (float32) and FFT work space held at once, at most
+#: bytes of filtered projections and FFT work space held at once, at most
 _BLOCK_BYTES = 256 * 2**20
 
 
@@ -279,7 +280,7 @@ def redundancy_weights(poses: Poses) -> tuple[np.ndarray, np.ndarray]:
         else:
             row = offset_weight(signed, short_reach)
         return np.tile(row, (n_views, 1)), view_rad
-    if scan.arc_rad > 2.0 * math.pi + step:
+    if scan.arc_rad > 2.0 * math.pi:
         raise _fail("poses", f"the views cover {math.degrees(scan.arc_rad):.6g} degrees, more "
                     "than one turn", "a circular scan of at most one turn")
     gamma = _fan_angles(scan, col)
@@ -394,14 +395,14 @@ def _cone_cosines(scan: CircularScan, poses: Poses) -> np.ndarray:
     return np.ones((row.shape[0], col.shape[1]))
 
 
-def _view_vectors(scan: CircularScan, poses: Poses):
-    if scan.mode == kernels.PARALLEL:
-        origin = poses.detector_centre
-    else:
-        origin = poses.source
-    d, u = poses.direction, poses.u_axis
-    return tuple(np.ascontiguousarray(a, dtype=np.float64) for a in (
-        origin[:, 0], origin[:, 1], origin[:, 2], d[:, 0], d[:, 1], u[:, 0], u[:, 1]))
+def view_geometry(poses: Poses) -> np.ndarray:
+    """Per view ``ox, oy, oz, wx, wy, ux, uy`` for the kernels, float64 (V, 7): the origin
+    (detector centre for parallel beams, source otherwise), central direction and column
+    axis."""
+    origin = poses.detector_centre if poses.parallel else poses.source
+    return np.ascontiguousarray(np.column_stack([
+        origin[:, 0], origin[:, 1], origin[:, 2], poses.direction[:, 0],
+        poses.direction[:, 1], poses.u_axis[:, 0], poses.u_axis[:, 1]]), dtype=np.float64)
 
 
 def _block_views(n_per_view_bytes: float) -> int:
@@ -543,11 +544,12 @@ def _reconstruct(poses, projections, grid, options) -> np.ndarray:
     n_padded = padded_length(n_ext)
     spectrum = filter_spectrum(n_padded, spacing, window, cutoff,
                                equiangular=scan.mode == kernels.CURVED)
-    vectors = _view_vectors(scan, poses)
+    views_geometry = view_geometry(poses)
     xs = np.ascontiguousarray(grid.axis_mm("x"), dtype=np.float64)
     ys = np.ascontiguousarray(grid.axis_mm("y"), dtype=np.float64)
     col0 = float(poses.col_u_mm[0]) - n_lo * float(poses.pitch_u_mm)
-    inv_pitch_u = 1.0 / float(poses.pitch_u_mm)
+    detector = np.array([scan.sdd_mm, col0, 1.0 / float(poses.pitch_u_mm),
+                         float(poses.row_v_mm[0]), 1.0 / float(poses.pitch_v_mm)])
     n_rows = 1 if poses.dimension == 2 else poses.n_rows
     per_view = n_rows * (n_ext + 3) * 4.0 + n_rows * n_padded * 24.0
     block = _block_views(per_view)
@@ -558,18 +560,14 @@ def _reconstruct(poses, projections, grid, options) -> np.ndarray:
             views = slice(start, min(start + block, poses.n_views))
             weighted = np.zeros((views.stop - start, n_ext))
             weighted[:, measured] = data[views] * (cone * weights[views])
-            filtered = np.zeros((weighted.shape[0], n_ext + 3), np.float32)
+            filtered = np.zeros((weighted.shape[0], n_ext + 3))
             filtered[:, 1:n_ext + 1] = apply_spectrum(weighted, spectrum, n_padded)
-            kernels.backproject_2d(filtered, scan.mode, vectors[0][views], vectors[1][views],
-                                   vectors[3][views], vectors[4][views], vectors[5][views],
-                                   vectors[6][views], scan.sdd_mm, col0, inv_pitch_u, xs, ys,
+            kernels.backproject_2d(filtered, scan.mode, views_geometry[views], detector, xs, ys,
                                    out)
         return out.astype(np.float32)
     zs = grid.axis_mm("z")
     z_first = float(zs[0])
     dz = float(grid.spacing_mm[2])
-    row0 = float(poses.row_v_mm[0])
-    inv_pitch_v = 1.0 / float(poses.pitch_v_mm)
     sub = max(1, int(32 * 2**20 // (n_rows * n_padded * 24.0)))  # views per FFT call
     for start in range(0, poses.n_views, block):
         views = slice(start, min(start + block, poses.n_views))
@@ -581,9 +579,6 @@ def _reconstruct(poses, projections, grid, options) -> np.ndarray:
             weighted[..., measured] = data[part] * (cone[None] * weights[part, None, :])
             filtered[first:first + weighted.shape[0], 1:n_ext + 1, 1:n_rows + 1] = \
                 apply_spectrum(weighted, spectrum, n_padded).transpose(0, 2, 1)
-        kernels.backproject_3d(filtered, scan.mode, vectors[0][views], vectors[1][views],
-                               vectors[2][views], vectors[3][views], vectors[4][views],
-                               vectors[5][views], vectors[6][views], scan.sdd_mm, col0,
-                               inv_pitch_u, row0, inv_pitch_v, xs, ys, z_first, dz,
-                               grid.shape[0], out)
+        kernels.backproject_3d(filtered, scan.mode, views_geometry[views], detector, xs, ys,
+                               z_first, dz, out)
     return out.astype(np.float32)

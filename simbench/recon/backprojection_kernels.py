@@ -1,7 +1,8 @@
 """Voxel-driven backprojection kernels (numba) for the analytic reconstructions.
 
 Every kernel gathers: each output pixel (voxel column) is owned by one thread, which adds the
-views in their order, so results do not depend on the number of threads. The filtered
+views in their order, so results do not depend on the number of threads. One parallel loop
+(:func:`_blocks`) serves 2-D and 3-D, so numba compiles one parallel kernel. The filtered
 projections arrive already multiplied by every factor that depends only on the view and the
 detector cell (redundancy, cosine and quadrature weights); the kernels add only what depends
 on the voxel: the detector position it projects to (linear interpolation) and, for divergent
@@ -11,6 +12,12 @@ Filtered projections are zero-padded: column index 0 and the last two columns (a
 3-D) are zeros, so a position clamped to the padded range reads zeros and no per-voxel
 branch is needed. Positions are given in padded index units: ``pos = (coordinate - first
 cell centre) / pitch + 1``.
+
+The geometry travels packed: ``views`` (V, 7) holds per view the origin (detector centre for
+parallel beams, source otherwise), the central direction w and the column axis u (x and y
+components; both are horizontal): ``ox, oy, oz, wx, wy, ux, uy``; ``detector`` holds
+``sdd, col0, 1 / pitch_u, row0, 1 / pitch_v`` (mm, 1/mm; first column and row centres, the
+column as arc length on curved detectors).
 
 Geometry modes: 0 parallel beam, 1 flat detector, 2 equiangular curved detector. For a voxel
 at r and a view with origin o (detector centre for parallel beams, source otherwise), central
@@ -39,94 +46,161 @@ PARALLEL = 0
 FLAT = 1
 CURVED = 2
 
-_FIXED = 4294967296.0  # 2**32: fixed-point scale of detector row positions
+_FIXED = 4294967296.0  # 2**32: fixed-point scale of detector positions
 _INV_FIXED = 1.0 / _FIXED
 _FRACTION = np.uint64(0xFFFFFFFF)
 
+#: image rows one thread works on together in 2-D (a view's data serves them all in cache)
+ROWS = 16
 #: voxel columns per side of the square tiles one thread works on in 3-D
 TILE = 8
 
-
-@njit(cache=True, error_model="numpy")
-def _column(mode, x, y, ox, oy, wx, wy, ux, uy, sdd):
-    """Column coordinate (mm), magnification along z and distance weight of one voxel column."""
-    a = (x - ox) * wx + (y - oy) * wy
-    b = (x - ox) * ux + (y - oy) * uy
-    if mode == PARALLEL:
-        return b, 1.0, 1.0
-    if mode == FLAT:
-        inv_a = 1.0 / a
-        return sdd * b * inv_a, sdd * inv_a, inv_a * inv_a
-    dist2 = a * a + b * b
-    return sdd * math.atan2(b, a), sdd / math.sqrt(dist2), 1.0 / dist2
+_NO_ROWS = np.zeros((0, 0))
+_NO_VOLUME = np.zeros((0, 0, 0), np.float32)
 
 
-@njit(parallel=True, cache=True, error_model="numpy")
-def backproject_2d(filtered, mode, ox, oy, wx, wy, ux, uy, sdd, col0, inv_pitch, xs, ys, out):
+def backproject_2d(filtered, mode, views, detector, xs, ys, out):
     """Add the backprojection of 2-D filtered projections into an image.
 
     Parameters
     ----------
-    filtered : float32 (V, C + 3)
+    filtered : float64 (V, C + 3)
         Weighted, filtered projections, zero-padded (column 0 and the last two are 0).
     mode : int
         0 parallel, 1 flat, 2 curved.
-    ox, oy, wx, wy, ux, uy : float64 (V,)
-        Per view: origin (detector centre for parallel, else source), central direction w
-        and column axis u (x and y components), mm and unit vectors.
-    sdd : float
-        Source-to-detector distance, mm (unused for parallel beams).
-    col0 : float
-        Centre of the first detector column, mm (arc length for curved detectors).
-    inv_pitch : float
-        1 / column pitch, 1/mm.
+    views : float64 (V, 7)
+        ``ox, oy, oz, wx, wy, ux, uy`` per view (module docstring).
+    detector : float64 (5,)
+        ``sdd, col0, 1 / pitch_u, row0, 1 / pitch_v`` (the last two unused in 2-D).
     xs, ys : float64 (nx,), (ny,)
-        Pixel-centre coordinates, mm.
+        Pixel-centre coordinates, mm (equally spaced).
     out : float64 (ny, nx)
         Accumulator (added to).
     """
-    for iy in prange(ys.shape[0]):
-        _image_row(filtered, mode, ox, oy, wx, wy, ux, uy, sdd, col0, inv_pitch, xs, ys[iy],
-                   out[iy])
+    n_blocks = (ys.shape[0] + ROWS - 1) // ROWS
+    _blocks(n_blocks, False, filtered, _NO_VOLUME, mode, views, detector, xs, ys, 0.0, 0.0,
+            out, np.zeros((0, 0, 0)))
+
+
+def backproject_3d(filtered, mode, views, detector, xs, ys, z_first, dz, out):
+    """Add the backprojection of 3-D filtered projections into a volume.
+
+    Parameters
+    ----------
+    filtered : float32 (V, C + 3, R + 3)
+        Weighted, filtered projections laid out (view, column, row) so that a voxel column
+        along z reads contiguous rows; zero-padded in columns and rows (index 0 and the last
+        two are 0).
+    mode : int
+        0 parallel, 1 flat, 2 curved.
+    views : float64 (V, 7)
+        ``ox, oy, oz, wx, wy, ux, uy`` per view (module docstring).
+    detector : float64 (5,)
+        ``sdd, col0, 1 / pitch_u, row0, 1 / pitch_v``.
+    xs, ys : float64 (nx,), (ny,)
+        Voxel-centre coordinates, mm.
+    z_first, dz : float
+        z of the first slice and the slice spacing, mm.
+    out : float64 (nz, ny, nx)
+        Accumulator (added to).
+
+    Notes
+    -----
+    The volume is cut into ``TILE x TILE`` columns of voxels; a thread accumulates a tile
+    in float64 over all views (:func:`_tile`), then adds it to ``out``.
+    """
+    tiles = ((xs.shape[0] + TILE - 1) // TILE) * ((ys.shape[0] + TILE - 1) // TILE)
+    _blocks(tiles, True, _NO_ROWS, filtered, mode, views, detector, xs, ys, z_first, dz,
+            np.zeros((0, 0)), out)
+
+
+@njit(parallel=True, cache=True, error_model="numpy")
+def _blocks(n_blocks, three_d, rows, volume, mode, views, detector, xs, ys, z_first, dz,
+            image, image_3d):
+    """The one parallel loop: blocks of image rows (2-D) or tiles of voxel columns (3-D)."""
+    tiles_x = (xs.shape[0] + TILE - 1) // TILE
+    for block in prange(n_blocks):
+        if three_d:
+            ty = block // tiles_x
+            _tile(volume, mode, views, detector, xs, ys, z_first, dz,
+                  (block - ty * tiles_x) * TILE, ty * TILE, image_3d)
+        else:
+            _image_rows(rows, mode, views, detector, xs, ys, block * ROWS, image)
 
 
 @njit(cache=True, error_model="numpy")
-def _image_row(filtered, mode, ox, oy, wx, wy, ux, uy, sdd, col0, inv_pitch, xs, y, out_row):
-    """Backproject every view into one image row (pixels at ``xs``, ``y``).
+def _image_rows(filtered, mode, views, detector, xs, ys, first, out):
+    """Backproject every view into ``ROWS`` image rows from row ``first``.
 
-    Along the row, ``a`` and ``b`` are linear in x. For parallel beams the column position
-    is linear too, and the pixels on the detector are resampled in one pass
-    (:func:`_resample_row`); for divergent beams each pixel computes its own position.
+    The views are the outer loop, so that a view's filtered row stays in cache while it
+    serves every image row of the block. Along an image row, ``a`` and ``b`` are linear in
+    x. For parallel beams the column position is linear too, and the pixels on the detector
+    are resampled in one pass, two views at a time (:func:`_resample_row_pair`); for
+    divergent beams each pixel computes its own position.
     """
     n_views = filtered.shape[0]
-    top = filtered.shape[1] - 2.0  # largest padded position read (a zero column follows)
     nx = xs.shape[0]
+    last = min(first + ROWS, ys.shape[0])
     dx = xs[1] - xs[0] if nx > 1 else 0.0
-    acc = np.zeros(nx)
-    for i in range(n_views):
-        row = filtered[i]
-        a0 = (xs[0] - ox[i]) * wx[i] + (y - oy[i]) * wy[i]
-        b0 = (xs[0] - ox[i]) * ux[i] + (y - oy[i]) * uy[i]
-        da = dx * wx[i]
-        db = dx * ux[i]
-        if mode == PARALLEL:
-            p0 = (b0 - col0) * inv_pitch + 1.0
-            dp = db * inv_pitch
-            lo, hi = _on_detector(p0, dp, top, nx)
-            _resample_row(row, p0, dp, lo, hi, acc)
-        elif mode == FLAT:
-            for ix in range(nx):
-                inv_a = 1.0 / (a0 + ix * da)
-                u = sdd * (b0 + ix * db) * inv_a
-                acc[ix] += inv_a * inv_a * _interpolate(row, (u - col0) * inv_pitch + 1.0, top)
-        else:
-            for ix in range(nx):
-                a = a0 + ix * da
-                b = b0 + ix * db
-                u = sdd * math.atan(b / a)  # a > 0: the grid is inside the source orbit
-                acc[ix] += _interpolate(row, (u - col0) * inv_pitch + 1.0, top) / (a * a + b * b)
-    for ix in range(nx):
-        out_row[ix] += acc[ix]
+    sdd, col0, inv_pitch = detector[0], detector[1], detector[2]
+    top = filtered.shape[1] - 2.0  # largest padded position read (a zero column follows)
+    acc = np.zeros((last - first, nx))
+    for i in range(0, n_views, 2 if mode == PARALLEL else 1):
+        for iy in range(first, last):
+            row_acc = acc[iy - first]
+            y = ys[iy]
+            if mode == PARALLEL:
+                lo, hi, p0, dp = _parallel_range(views[i], col0, inv_pitch, xs[0], dx, y, top,
+                                                 nx)
+                if i + 1 == n_views:
+                    _resample_row(filtered[i], p0, dp, lo, hi, row_acc)
+                    continue
+                lo_b, hi_b, pb, db = _parallel_range(views[i + 1], col0, inv_pitch, xs[0], dx,
+                                                     y, top, nx)
+                both_lo, both_hi = max(lo, lo_b), min(hi, hi_b)
+                if both_lo < both_hi:
+                    _resample_row_pair(filtered[i], p0, dp, filtered[i + 1], pb, db, both_lo,
+                                       both_hi, row_acc)
+                else:
+                    both_lo = both_hi = hi
+                _resample_row(filtered[i], p0, dp, lo, both_lo, row_acc)
+                _resample_row(filtered[i], p0, dp, both_hi, hi, row_acc)
+                _resample_row(filtered[i + 1], pb, db, lo_b, min(both_lo, hi_b), row_acc)
+                _resample_row(filtered[i + 1], pb, db, max(both_hi, lo_b), hi_b, row_acc)
+                continue
+            row = filtered[i]
+            ox, oy, wx, wy, ux, uy = (views[i, 0], views[i, 1], views[i, 3], views[i, 4],
+                                      views[i, 5], views[i, 6])
+            a0 = (xs[0] - ox) * wx + (y - oy) * wy
+            b0 = (xs[0] - ox) * ux + (y - oy) * uy
+            da = dx * wx
+            db = dx * ux
+            if mode == FLAT:
+                for ix in range(nx):
+                    inv_a = 1.0 / (a0 + ix * da)
+                    u = sdd * (b0 + ix * db) * inv_a
+                    row_acc[ix] += inv_a * inv_a * _interpolate(row, (u - col0) * inv_pitch
+                                                                + 1.0, top)
+            else:
+                for ix in range(nx):
+                    a = a0 + ix * da
+                    b = b0 + ix * db
+                    u = sdd * math.atan(b / a)  # a > 0: the grid is inside the source orbit
+                    row_acc[ix] += (_interpolate(row, (u - col0) * inv_pitch + 1.0, top)
+                                    / (a * a + b * b))
+    for iy in range(first, last):
+        for ix in range(nx):
+            out[iy, ix] += acc[iy - first, ix]
+
+
+@njit(cache=True, error_model="numpy")
+def _parallel_range(view, col0, inv_pitch, x0, dx, y, top, nx):
+    """Pixels ``lo <= ix < hi`` of an image row that fall on the detector in a parallel
+    view, and their padded column positions ``p0 + ix dp``."""
+    p0 = ((x0 - view[0]) * view[5] + (y - view[1]) * view[6] - col0) * inv_pitch + 1.0
+    dp = dx * view[5] * inv_pitch
+    lo, hi = _on_detector(p0, dp, top, nx)
+    return lo, hi, p0, dp
 
 
 @njit(cache=True, error_model="numpy")
@@ -135,8 +209,8 @@ def _interpolate(row, pos, top):
     pos = min(max(pos, 0.0), top)
     j = uint64(pos)
     f = pos - float64(j)
-    a = float64(row[j])
-    return a + f * (float64(row[j + uint64(1)]) - a)
+    a = row[j]
+    return a + f * (row[j + uint64(1)] - a)
 
 
 @njit(cache=True, error_model="numpy", fastmath={"contract"})
@@ -150,9 +224,31 @@ def _resample_row(row, p0, dp, lo, hi, acc):
         fixed = uint64(max(position, zero))
         k = fixed >> uint64(32)
         f = float64(int64(fixed & _FRACTION)) * _INV_FIXED
-        a = float64(row[k])
-        acc[ix] += a + f * (float64(row[k + uint64(1)]) - a)
+        a = row[k]
+        acc[ix] += a + f * (row[k + uint64(1)] - a)
         position += step
+
+
+@njit(cache=True, error_model="numpy", fastmath={"contract"})
+def _resample_row_pair(row_a, pa, da, row_b, pb, db, lo, hi, acc):
+    """As :func:`_resample_row` for two views at once (one load and store of ``acc``)."""
+    position_a = int64((pa + lo * da) * _FIXED + 0.5)
+    step_a = int64(da * _FIXED + (0.5 if da >= 0.0 else -0.5))
+    position_b = int64((pb + lo * db) * _FIXED + 0.5)
+    step_b = int64(db * _FIXED + (0.5 if db >= 0.0 else -0.5))
+    zero = int64(0)
+    for ix in range(uint64(lo), uint64(hi)):
+        fixed_a = uint64(max(position_a, zero))
+        k = fixed_a >> uint64(32)
+        f = float64(int64(fixed_a & _FRACTION)) * _INV_FIXED
+        a = row_a[k]
+        fixed_b = uint64(max(position_b, zero))
+        m = fixed_b >> uint64(32)
+        g = float64(int64(fixed_b & _FRACTION)) * _INV_FIXED
+        b = row_b[m]
+        acc[ix] += (a + f * (row_a[k + uint64(1)] - a)) + (b + g * (row_b[m + uint64(1)] - b))
+        position_a += step_a
+        position_b += step_b
 
 
 @njit(cache=True, error_model="numpy")
@@ -174,52 +270,8 @@ def _on_detector(p0, dp, top, n):
     return lo, max(lo, hi)
 
 
-@njit(parallel=True, cache=True, error_model="numpy")
-def backproject_3d(filtered, mode, ox, oy, oz, wx, wy, ux, uy, sdd, col0, inv_pitch_u, row0,
-                   inv_pitch_v, xs, ys, z_first, dz, nz, out):
-    """Add the backprojection of 3-D filtered projections into a volume.
-
-    Parameters
-    ----------
-    filtered : float32 (V, C + 3, R + 3)
-        Weighted, filtered projections laid out (view, column, row) so that a voxel column
-        along z reads contiguous rows; zero-padded in columns and rows (index 0 and the last
-        two are 0).
-    mode : int
-        0 parallel, 1 flat, 2 curved.
-    ox, oy, oz, wx, wy, ux, uy : float64 (V,)
-        Per view: origin (detector centre for parallel, else source), central direction w
-        and column axis u (x and y components; both are horizontal), mm and unit vectors.
-    sdd : float
-        Source-to-detector distance, mm.
-    col0, row0 : float
-        Centres of the first column (arc length on curved detectors) and row, mm.
-    inv_pitch_u, inv_pitch_v : float
-        1 / pitch, 1/mm.
-    xs, ys : float64 (nx,), (ny,)
-        Voxel-centre coordinates, mm.
-    z_first, dz : float
-        z of the first slice and the slice spacing, mm.
-    nz : int
-    out : float64 (nz, ny, nx)
-        Accumulator (added to).
-
-    Notes
-    -----
-    The volume is cut into ``TILE x TILE`` columns of voxels; a thread accumulates a tile
-    in float64 over all views (:func:`_tile`), then adds it to ``out``.
-    """
-    tiles_x = (xs.shape[0] + TILE - 1) // TILE
-    tiles_y = (ys.shape[0] + TILE - 1) // TILE
-    for t in prange(tiles_x * tiles_y):
-        ty = t // tiles_x
-        _tile(filtered, mode, ox, oy, oz, wx, wy, ux, uy, sdd, col0, inv_pitch_u, row0,
-              inv_pitch_v, xs, ys, z_first, dz, nz, (t - ty * tiles_x) * TILE, ty * TILE, out)
-
-
 @njit(cache=True, error_model="numpy")
-def _tile(filtered, mode, ox, oy, oz, wx, wy, ux, uy, sdd, col0, inv_pitch_u, row0,
-          inv_pitch_v, xs, ys, z_first, dz, nz, x_lo, y_lo, out):
+def _tile(filtered, mode, views, detector, xs, ys, z_first, dz, x_lo, y_lo, out):
     """Backproject every view into the tile of voxel columns starting at (x_lo, y_lo).
 
     Along a column the row position is linear in z, ``v(iz) = v0 + iz dv``; the slices whose
@@ -231,6 +283,9 @@ def _tile(filtered, mode, ox, oy, oz, wx, wy, ux, uy, sdd, col0, inv_pitch_u, ro
     serves two voxels (:func:`_resample_add_mirrored`).
     """
     n_views = filtered.shape[0]
+    nz = out.shape[0]
+    sdd, col0, inv_pitch_u, row0, inv_pitch_v = (detector[0], detector[1], detector[2],
+                                                 detector[3], detector[4])
     top_u = filtered.shape[1] - 2.0
     top_v = filtered.shape[2] - 2.0
     n_lines = filtered.shape[2]
@@ -244,16 +299,26 @@ def _tile(filtered, mode, ox, oy, oz, wx, wy, ux, uy, sdd, col0, inv_pitch_u, ro
     acc = np.zeros((TILE * TILE, nz))
     line = np.zeros(n_lines)
     for i in range(n_views):
+        ox, oy, oz, wx, wy, ux, uy = (views[i, 0], views[i, 1], views[i, 2], views[i, 3],
+                                      views[i, 4], views[i, 5], views[i, 6])
         mirrored = (centred_rows
-                    and abs(z_first + z_last - 2.0 * oz[i]) <= 1e-9 * (abs(dz) * nz + 1.0))
+                    and abs(z_first + z_last - 2.0 * oz) <= 1e-9 * (abs(dz) * nz + 1.0))
         for iy in range(y_lo, y_hi):
             for ix in range(x_lo, x_hi):
-                u, mag, weight = _column(mode, xs[ix], ys[iy], ox[i], oy[i], wx[i], wy[i],
-                                         ux[i], uy[i], sdd)
+                a = (xs[ix] - ox) * wx + (ys[iy] - oy) * wy
+                b = (xs[ix] - ox) * ux + (ys[iy] - oy) * uy
+                if mode == PARALLEL:
+                    u, mag, weight = b, 1.0, 1.0
+                elif mode == FLAT:
+                    mag = sdd / a
+                    u, weight = b * mag, 1.0 / (a * a)
+                else:
+                    dist2 = a * a + b * b
+                    u, mag, weight = sdd * math.atan(b / a), sdd / math.sqrt(dist2), 1.0 / dist2
                 pos_u = (u - col0) * inv_pitch_u + 1.0
                 if not (0.0 <= pos_u < top_u):
                     continue
-                v0 = (mag * (z_first - oz[i]) - row0) * inv_pitch_v + 1.0
+                v0 = (mag * (z_first - oz) - row0) * inv_pitch_v + 1.0
                 dv = mag * dz * inv_pitch_v
                 lo, hi = _on_detector(v0, dv, top_v, nz)
                 if lo >= hi:
