@@ -91,13 +91,15 @@ def test_filter_spectrum_is_the_ramp_with_the_right_dc():
     assert spectrum[0] == pytest.approx(dc, rel=1e-9) and dc > 0
 
 
-@pytest.mark.parametrize("window, at_nyquist", [
-    ("ramp", 1.0), ("shepp-logan", 2.0 / np.pi), ("cosine", 0.0), ("hamming", 0.08),
-    ("hann", 0.0),
-])
-def test_windows_at_zero_and_nyquist(window, at_nyquist):
-    # the windows' definitions (common practice; as in Kak & Slaney ch. 3 and scikit-image):
-    # 1 at zero frequency; at Nyquist sin(pi/2)/(pi/2), cos(pi/2), 0.54 - 0.46, 0.5 - 0.5
+# the windows' definitions (common practice; as in Kak & Slaney ch. 3 and scikit-image):
+# 1 at zero frequency; at Nyquist 1, sin(pi/2)/(pi/2), cos(pi/2), 0.54 - 0.46, 0.5 - 0.5
+NYQUIST_VALUES = {"ramp": 1.0, "shepp-logan": 2.0 / np.pi, "cosine": 0.0, "hamming": 0.08,
+                  "hann": 0.0}
+
+
+@pytest.mark.parametrize("window", WINDOWS)
+def test_windows_at_zero_and_nyquist(window):
+    at_nyquist = NYQUIST_VALUES[window]
     w = window_response(window, 1.0, np.array([0.0, 1.0]))
     assert w[0] == pytest.approx(1.0)
     assert w[1] == pytest.approx(at_nyquist, abs=1e-12)
@@ -167,7 +169,8 @@ def test_full_turn_weights():
     # the last view repeating the first shares its angle with it
     rho, view = redundancy_weights(fan_poses(sid_mm=500, sdd_mm=900, n_cols=64,
                                              pitch_u_mm=1.0, n_views=91, include_arc_end=True))
-    assert view[0] == view[-1] == pytest.approx(view[1] / 2) and view.sum() == pytest.approx(2 * np.pi)
+    assert view[0] == view[-1] == pytest.approx(view[1] / 2)
+    assert view.sum() == pytest.approx(2 * np.pi)
 
 
 # --------------------------------------------------------------------------------------------
@@ -293,8 +296,9 @@ def test_half_fan_reconstructs_the_whole_field_of_view(shepp_logan_recons, curve
     outer = (radius > 40.0) & _brain(r["grid"])
     for name in ("half fan", "half fan, clockwise"):
         half = r[(curved, name)]
-        # measured for this test: RMS 1.6e-6 /mm in the brain; kept at 1e-5; the whole disc
-        # with the skull's edges kept at 1 % of the skull's 0.04 /mm
+        # measured for this test: RMS 1.2e-6 /mm in the brain and 1.4e-6 /mm in its outer
+        # part, kept at 1e-5; 1.0e-4 /mm over the whole disc with the skull's edges, kept at
+        # 4e-4 (1 % of the skull's 0.04 /mm); to the truth 5.8e-6 /mm, kept at 3e-5
         assert _rms(half - full, _brain(r["grid"])) < 1e-5
         assert _rms(half - full, outer) < 1e-5
         assert _rms(half - full, where) < 4e-4
@@ -389,13 +393,14 @@ def test_fdk_central_slice_equals_fan_beam_fbp(curved):
     sino = projections(phantom, cone)
     volume = fdk(cone, sino, grid3)
     image = fbp(fan, sino[:, 15, :], ImageGrid.square_2d(160, 1.4))
-    # float32 storage of the filtered data in both, the same sums otherwise
+    # float32 storage of the filtered data in FDK, float64 in 2-D, the same sums otherwise
+    # (measured 8e-8 of the peak; kept at 1e-5)
     assert np.abs(volume[2] - image).max() < 1e-5 * np.abs(image).max()
-    # and in the plane the 3-D phantom is close to its truth (measured RMS 2e-4 /mm in the
-    # water, kept at 1e-3, about 5 % of water: edges of small inserts alias)
+    # and in the plane the 3-D phantom is close to its truth (measured RMS 6e-5 /mm inside
+    # the water cylinder, edges of the inserts included; kept at 2e-4, 1 % of water)
     truth = rasterize(phantom, ImageGrid((1, 160, 160), (1.4, 1.4, 0.01)), ENERGY_KEV)[0]
     body = radius_map(grid3) < 90.0
-    assert _rms(volume[2] - truth, body) < 1e-3
+    assert _rms(volume[2] - truth, body) < 2e-4
 
 
 def test_short_scan_and_offset_cone_beam():
@@ -576,7 +581,3 @@ def test_bad_scans_and_arrays_are_refused():
     overlap = fan_poses(sid_mm=300, sdd_mm=500, n_cols=20, pitch_u_mm=2.0,
                         angles_rad=np.arange(361) * 2 * np.pi / 360.5)
     _one_line(lambda: fbp(overlap, np.zeros(overlap.projection_shape), grid2), "one turn")
-
-
-def test_all_windows_listed():
-    assert WINDOWS == ("ramp", "shepp-logan", "cosine", "hamming", "hann")
