@@ -331,3 +331,25 @@ def test_detector_width_uses_cells_times_pitch():
     text, _ = with_field(text, "column_pitch", 2.5)
     assert geometry(text).n_cols == 40_000
     assert math.isclose(40_000 * 2.5, 1e5)
+
+
+def test_curved_detector_wider_than_half_a_turn_is_refused():
+    # 1000 cells of 1 mm at SDD 20 mm: fan angle 1000 / 20 rad = 2864.8 deg (curved detectors:
+    # gamma = u / SDD, docs/geometry.md)
+    text = ("geometry:\n  type: fan\n  sid: 10\n  sdd: 20\n  detector_shape: curved\n"
+            "  columns: 1000\n  column_pitch: 1\n  views: 4\n")
+    refused(text, line=6, field="geometry.columns", words=("2864.79 deg", "under 180 deg"))
+
+
+def test_curved_detector_just_under_half_a_turn_is_accepted():
+    # 31 cells of 1 mm at SDD 10 mm: edges at +-15.5 mm, fan 31 / 10 rad = 177.6 deg
+    text = ("geometry:\n  type: fan\n  sid: 5\n  sdd: 10\n  detector_shape: curved\n"
+            "  columns: 31\n  column_pitch: 1\n  views: 4\n")
+    assert math.degrees(geometry(text).fan_angle_rad) == pytest.approx(math.degrees(3.1))
+
+
+def test_curved_pose_detector_wider_than_half_a_turn_is_refused():
+    text = ("geometry:\n  type: poses\n  detector_shape: curved\n  columns: 1000\n"
+            "  column_pitch: 1\n  poses:\n    - {source: [0, -10, 0], detector_centre: [0, 10, 0], "
+            "u_axis: [1, 0, 0], v_axis: [0, 0, 1]}\n")
+    refused(text, line=7, field="geometry.poses[0].detector_centre", words=("1432.39 deg",))

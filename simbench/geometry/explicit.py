@@ -146,6 +146,17 @@ def poses_from_arrays(*, detector_centre, u_axis, v_axis, n_cols: int, pitch_u_m
         ray = w / length[:, None]
         field = "source"
         if curved:
+            col = cell_centres_mm(n_cols, pitch_u_mm, offset_u_mm)
+            edge = float(np.max(np.abs(col))) + 0.5 * float(pitch_u_mm)
+            bad = np.flatnonzero(edge / length >= 0.5 * np.pi)
+            if bad.size:
+                i = int(bad[0])
+                raise InputError(place(i, "detector_centre"),
+                                 f"the curved detector's outer cells are {edge:.6g} mm of arc "
+                                 f"from its centre, {np.degrees(edge / length[i]):.6g} deg at "
+                                 f"{length[i]:.6g} mm from the source",
+                                 "a fan angle under 180 deg: the detector farther from the "
+                                 "source, or fewer or narrower cells")
             off = np.maximum(np.abs(np.einsum("ij,ij->i", ray, u)),
                              np.abs(np.einsum("ij,ij->i", ray, v)))
             bad = np.flatnonzero(off > tolerance)

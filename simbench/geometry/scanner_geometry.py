@@ -399,6 +399,12 @@ def parse_geometry(section: Section) -> ScannerGeometry:
         table_feed_per_turn_mm=L.shift(section, "table_feed_per_turn"),
         start_z_mm=L.shift(section, "start_z"),
     )
+    if curved and geometry.fan_angle_rad >= math.pi:
+        raise section.error("columns", f"{n_cols:,} cells of {pitch_u:g} mm on a curved detector "
+                            f"at SDD {sdd:g} mm span a fan of "
+                            f"{math.degrees(geometry.fan_angle_rad):.6g} deg (cells beyond 90 deg "
+                            "from the central ray face away from the source)",
+                            "a fan angle under 180 deg: fewer or narrower cells, or a larger SDD")
     if kind == "helical" and geometry.table_feed_per_turn_mm == 0.0:
         raise section.error("table_feed_per_turn", "a helical scan needs a table feed",
                             "a non-zero length per turn, or type cone for a circular scan")
