@@ -17,7 +17,7 @@ CIRCLE = "name: t\ndimension: 2\nobjects:\n  - {shape: circle, radius: 1, mu: 1 
 
 @pytest.mark.parametrize("pixels", [MIN_PIXELS - 1, MAX_PIXELS + 1, 10**9, 2.5, True, "64"])
 def test_pixels_out_of_range(tmp_path, pixels):
-    with pytest.raises(InputError, match=r"pixels: must be a whole number from 8 to 2048"):
+    with pytest.raises(InputError, match=r"pixels: must be a whole number from 8 to 4096"):
         draw_phantom(parse_phantom_text(CIRCLE), tmp_path / "p.png", pixels=pixels)
     assert not list(tmp_path.iterdir())
 
@@ -48,7 +48,7 @@ def test_extreme_sizes_are_drawn(tmp_path, objects):
 
 def test_drawing_over_the_budget_is_refused_before_rasterizing(tmp_path):
     phantom = parse_phantom_text(CIRCLE)
-    budget.set_memory_budget(2**20)  # 1 MiB; 2048^2 pixels x 32 B = 128 MiB (arithmetic)
+    budget.set_memory_budget(2**20)  # 1 MiB; 4096^2 pixels x 32 B = 512 MiB (arithmetic)
     try:
         with pytest.raises(InputError, match=r"pixels: drawing [\d,]+ pixels would need about"):
             draw_phantom(phantom, tmp_path / "p.png", pixels=MAX_PIXELS)

@@ -15,9 +15,10 @@ from simbench.geometry.grid import ImageGrid
 from simbench.phantom.compiled import PRISM_CODES, Phantom
 from simbench.phantom.rasterize import rasterize
 
-#: Range of the ``pixels`` setting: the panels are drawn about 670 pixels wide (5.6 inches at
-#: 120 dpi), so more than 2048 adds memory and time but nothing visible.
-MIN_PIXELS, MAX_PIXELS = 8, 2048
+#: Range of the ``pixels`` setting (the command line's ``--pixels`` range ends at the same
+#: 4096): the panels are drawn about 670 pixels wide (5.6 inches at 120 dpi), so large values
+#: add memory and time rather than detail.
+MIN_PIXELS, MAX_PIXELS = 8, 4096
 #: Bytes per panel pixel while drawing: the float64 image, the rasterizer's work array and
 #: matplotlib's resampled RGBA copy (estimate).
 BYTES_PER_PIXEL = 32
@@ -67,7 +68,7 @@ def draw_phantom(phantom: Phantom, path: str | Path, *, energy_kev: float = 60.0
     energy_kev : float
         Energy at which mu is shown, keV.
     pixels : int
-        Pixels along the longer side of each panel, from 8 to 2048.
+        Pixels along the longer side of each panel, from 8 to 4096.
 
     Returns
     -------
@@ -85,7 +86,7 @@ def draw_phantom(phantom: Phantom, path: str | Path, *, energy_kev: float = 60.0
     Raises
     ------
     InputError
-        ``pixels`` outside 8 to 2048, an energy that is not a positive number, or panels whose
+        ``pixels`` outside 8 to 4096, an energy that is not a positive number, or panels whose
         memory estimate is over the budget.
     """
     import matplotlib
