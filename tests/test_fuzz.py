@@ -31,8 +31,8 @@ from fuzz_harness import (InputFile, describe_input, judge_cli, judge_loader, li
                           run_cli, run_loader, yaml_has_content)
 
 #: examples of each test in the normal suite (about 1000 in all)
-EXAMPLES = {"phantom": 300, "scanner": 300, "trace": 150, "scan": 60, "draw": 30,
-            "options": 160}
+EXAMPLES = {"phantom": 300, "scanner": 330, "trace": 150, "scan": 45, "draw": 12,
+            "options": 165}
 #: how many times more the long run draws
 LONG_FACTOR = 20
 
