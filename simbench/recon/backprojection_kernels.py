@@ -25,8 +25,8 @@ direction w and column axis u (both horizontal): ``a = (r - o) . w``, ``b = (r -
 
 * parallel: column coordinate ``b``, row coordinate ``z - o_z``, weight 1;
 * flat: column ``SDD b / a``, row ``SDD (z - o_z) / a``, weight ``1 / a^2``;
-* curved: column (arc length) ``SDD atan2(b, a)``, row ``SDD (z - o_z) / L``, weight
-  ``1 / L^2`` with ``L^2 = a^2 + b^2``.
+* curved: column (arc length) ``SDD atan(b / a)`` (a > 0 inside the source orbit), row
+  ``SDD (z - o_z) / L``, weight ``1 / L^2`` with ``L^2 = a^2 + b^2``.
 
 References
 ----------
