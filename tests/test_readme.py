@@ -41,6 +41,8 @@ def test_command_examples_parse(line):
     # Every command shown in the tour is a valid command line (parsed, not run).
     from simbench.cli import build_parser
 
-    words = line.split("#")[0].split()[1:]
+    import shlex
+
+    words = shlex.split(line.split("  #")[0])[1:]
     args = build_parser().parse_args(words)
     assert args.command == words[0]
