@@ -45,6 +45,7 @@ import signal
 import time
 import traceback
 import tracemalloc
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -166,6 +167,89 @@ def guarded(hang_limit_s: float = HANG_LIMIT_S):
         budget.set_memory_budget(None)
         if started_tracing:
             tracemalloc.stop()
+
+
+# --------------------------------------------------------------------------------------------
+# Warming up
+# --------------------------------------------------------------------------------------------
+
+#: small valid files: a disc of water, a parallel beam of 8 cells and 3 views
+TINY_PHANTOM = ("name: tiny\ndimension: 2\nobjects:\n"
+                "  - {shape: circle, radius: 5, material: water}\n")
+TINY_SCANNER = ("name: tiny\ngeometry: {type: parallel, columns: 8, column_pitch: 2 mm, views: 3}\n"
+                "source: {energy: 60 keV}\nexposure: {air_counts: 1.0e+4}\n")
+
+#: warm-up inputs that reach every family of compiled kernels: 2-D and 3-D shapes, label and
+#: mu voxels, each geometry, a tube with photon counting, sub-rays, blur, lag and scatter
+_WARM_PHANTOMS = {
+    "warm-2d.yaml": "name: w\ndimension: 2\nobjects:\n  - {shape: ellipse, semi_axes: [9, 5], "
+                    "angle: 20, material: water}\n  - {shape: polygon, vertices: [[0, 0], [4, 0], "
+                    "[0, 4]], mu: 0.01 /mm, mode: add}\n  - bars: {line_pairs_per_mm: 1, count: 2, "
+                    "length: 4, material: aluminium}\n",
+    "warm-3d.yaml": "name: w\ndimension: 3\nobjects:\n  - {shape: cylinder, radius: 9, height: 9, "
+                    "material: water}\n  - {shape: cone, base_radius: 3, top_radius: 0, height: 4, "
+                    "axis: [1, 1, 1], material: pmma}\n  - {shape: box, size: [2, 2, 2], rotate: "
+                    "[x: 30], mu: 0.02 /mm}\n  - {shape: ellipsoid, semi_axes: [1, 2, 3], "
+                    "material: lung}\n",
+    "warm-labels.yaml": "name: w\ndimension: 2\nvoxels: {file: warm-labels.npy, voxel_size: 2, "
+                        "labels: {1: water}}\n",
+    "warm-mu.yaml": "name: w\ndimension: 3\nvoxels: {file: warm-mu.npy, voxel_size: 2, "
+                    "mu_unit: /mm}\n",
+}
+_WARM_SCANNERS = {
+    "warm-fan.yaml": ("warm-2d.yaml", "name: w\ngeometry: {type: fan, sid: 100, sdd: 200, "
+                      "detector_shape: curved, columns: 8, column_pitch: 4, views: 2}\nsource: "
+                      "{kvp: 80, focal_spot: 1 mm, focal_spot_samples: 2}\nexposure: {air_counts: "
+                      "1.0e+4}\ndetector: {type: photon-counting, thresholds: [20, 40], "
+                      "energy_resolution: 5 keV, material: CdTe, thickness: 1 mm, blur: 1 mm, "
+                      "lag: 0.1, aperture_samples: 2, dead_cells: [1], full_scale: 1.0e+6, "
+                      "hot_cells: [2]}\nscatter: {model: thickness, max_spr: 0.2, "
+                      "thickness_scale: 100 mm}\n"),
+    "warm-cone.yaml": ("warm-3d.yaml", "name: w\ngeometry: {type: helical, sid: 100, sdd: 200, "
+                       "columns: 8, column_pitch: 4, rows: 2, row_pitch: 4, views: 2, "
+                       "table_feed_per_turn: 5}\nsource: {kvp: 80}\nexposure: {mas_per_view: "
+                       "0.01}\ndetector: {material: CsI, thickness: 0.5 mm, electronic_noise: 2, "
+                       "dark_level: 10, gain_spread: 0.01, crosstalk: 0.01}\nscatter: {model: "
+                       "centre, spr_at_centre: 0.1}\n"),
+    "warm-poses.yaml": ("warm-mu.yaml", "name: w\ngeometry: {type: poses, beam: parallel, "
+                        "columns: 8, column_pitch: 4, rows: 2, row_pitch: 4, poses: [{direction: "
+                        "[0, 1, 0], detector_centre: [0, 50, 0], u_axis: [1, 0, 0], v_axis: "
+                        "[0, 0, 1]}]}\nsource: {energy: 60 keV}\nexposure: {air_counts: 100}\n"),
+    "warm-parallel.yaml": ("warm-labels.yaml", TINY_SCANNER),
+}
+
+
+_warmed = False
+
+
+def warm_up(folder: Path) -> None:
+    """Run each command once on inputs that reach every family of compiled kernels.
+
+    This loads numba's compiled kernels (compiling them on a fresh install), xraylib's tables,
+    scipy and matplotlib outside any guarded run, where a first compilation would pass the
+    hang limit. Runs once per process; ``folder`` receives the warm-up files.
+    """
+    global _warmed
+    if _warmed:
+        return
+    np.save(folder / "warm-labels.npy", np.array([[0, 1], [1, 1]], dtype=np.uint8))
+    np.save(folder / "warm-mu.npy", np.full((2, 2, 2), 0.01))
+    for name, text in {**_WARM_PHANTOMS, **{k: v[1] for k, v in _WARM_SCANNERS.items()}}.items():
+        (folder / name).write_text(text)
+    from simbench.cli import main
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        for scanner, (phantom, _) in _WARM_SCANNERS.items():
+            for command in (["trace", str(folder / phantom), str(folder / scanner), "--energy",
+                             "60", "-o", str(folder / (scanner + ".npy"))],
+                            ["scan", str(folder / phantom), str(folder / scanner), "-o",
+                             str(folder / (scanner + ".scan"))]):
+                assert main(command) == 0, command
+        for phantom in _WARM_PHANTOMS:
+            assert main(["draw", str(folder / phantom), "--pixels", "16", "-o",
+                         str(folder / (phantom + ".png"))]) == 0, phantom
+    _warmed = True
 
 
 # --------------------------------------------------------------------------------------------

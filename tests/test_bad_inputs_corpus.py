@@ -30,7 +30,8 @@ from pathlib import Path
 import pytest
 import yaml
 
-from fuzz_harness import InputFile, describe_input, judge_cli, listing, report, run_cli
+from fuzz_harness import (InputFile, describe_input, judge_cli, listing, report, run_cli,
+                          warm_up)
 
 HERE = Path(__file__).parent / "bad_inputs"
 #: hostile files may take a while to refuse on a busy machine; this only stops a hang
@@ -56,6 +57,12 @@ def _inputs() -> list[InputFile]:
 
 
 CASES = _cases()
+
+
+@pytest.fixture(scope="module", autouse=True)
+def _warm(tmp_path_factory):
+    """Compiled kernels and libraries loaded before any guarded run (see ``warm_up``)."""
+    warm_up(tmp_path_factory.mktemp("warm"))
 
 
 def test_index_names_existing_files():
