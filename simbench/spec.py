@@ -49,8 +49,12 @@ def _mark(node: yaml.Node) -> tuple[int, int]:
     return (node.start_mark.line + 1, node.start_mark.column + 1)
 
 
-class _LocatedLoader(yaml.SafeLoader):
-    """SafeLoader that builds LocatedDict/LocatedList and refuses duplicate keys."""
+_SAFE_LOADER = getattr(yaml, "CSafeLoader", yaml.SafeLoader)  # libyaml's parser where present
+
+
+class _LocatedLoader(_SAFE_LOADER):
+    """Safe loader (libyaml's C parser where available, with PyYAML's safe constructors) that
+    builds LocatedDict/LocatedList and refuses duplicate keys."""
 
 
 def _construct_mapping(loader: _LocatedLoader, node: yaml.MappingNode) -> LocatedDict:
@@ -102,8 +106,9 @@ _NUMBER_LIKE = re.compile(r"^[-+]?[0-9][0-9_.,eE+-]*$")
 def _check_structure(text: str, source: str) -> None:
     """Refuse nesting deeper than :data:`MAX_YAML_DEPTH` and absurdly long numbers, from the
     parser's events (an iterative pass, before any recursive construction)."""
+    _check_flow_depth(text, source)
     depth = 0
-    for event in yaml.parse(text, Loader=yaml.SafeLoader):
+    for event in yaml.parse(text, Loader=_SAFE_LOADER):
         if isinstance(event, (yaml.MappingStartEvent, yaml.SequenceStartEvent)):
             depth += 1
             if depth > MAX_YAML_DEPTH:
@@ -113,13 +118,53 @@ def _check_structure(text: str, source: str) -> None:
                                  f"at most {MAX_YAML_DEPTH} levels of nesting")
         elif isinstance(event, (yaml.MappingEndEvent, yaml.SequenceEndEvent)):
             depth -= 1
-        elif (isinstance(event, yaml.ScalarEvent) and event.style is None
+        elif (isinstance(event, yaml.ScalarEvent) and not event.style  # plain: None or ""
               and len(event.value) > MAX_NUMBER_CHARACTERS and _NUMBER_LIKE.match(event.value)):
             mark = event.start_mark
             raise InputError(Where(source, mark.line + 1, mark.column + 1, ""),
                              f"a number written with {len(event.value)} characters",
                              f"a number of at most {MAX_NUMBER_CHARACTERS} characters, such as "
                              "1.5e-3")
+
+
+def _code_point(character) -> int:
+    """PyYAML reports a bad character as text, libyaml as its number."""
+    return ord(character) if isinstance(character, str) else int(character)
+
+
+def _check_flow_depth(text: str, source: str) -> None:
+    """Refuse flow brackets nested deeper than :data:`MAX_YAML_DEPTH` from the raw text, in
+    one linear pass (a parser's cost grows faster than linearly with such nesting).
+
+    Brackets inside quoted scalars and comments are not counted; a stray bracket in a plain
+    scalar may be, which can only make the check stricter on absurd inputs.
+    """
+    if text.count("[") + text.count("{") <= MAX_YAML_DEPTH:
+        return
+    depth, quote, line, column, comment = 0, "", 1, 0, False
+    for char in text:
+        column += 1
+        if char == "\n":
+            line, column, comment = line + 1, 0, False
+            continue
+        if comment:
+            continue
+        if quote:
+            if char == quote:
+                quote = ""
+            continue
+        if char in "'\"":
+            quote = char
+        elif char == "#":
+            comment = True
+        elif char in "[{":
+            depth += 1
+            if depth > MAX_YAML_DEPTH:
+                raise InputError(Where(source, line, column, ""),
+                                 f"lists and mappings nested more than {MAX_YAML_DEPTH} deep",
+                                 f"at most {MAX_YAML_DEPTH} levels of nesting")
+        elif char in "]}":
+            depth = max(0, depth - 1)
 
 
 def parse_yaml_text(text: str, source: str = "<input>") -> Any:
@@ -143,6 +188,13 @@ def parse_yaml_text(text: str, source: str = "<input>") -> Any:
             f"YAML syntax error: {problem}",
             "well-formed YAML (check indentation, colons and quotes)",
         ) from None
+    except yaml.reader.ReaderError as exc:  # a character YAML does not allow, by position
+        before = text[:max(0, int(exc.position))]
+        line = before.count("\n") + 1
+        column = len(before) - (before.rfind("\n") + 1) + 1
+        raise InputError(Where(source, line, column, ""),
+                         f"character U+{_code_point(exc.character):04X} is not allowed in YAML",
+                         "printable text (tabs and newlines are fine)") from None
     except yaml.YAMLError as exc:  # pragma: no cover - unmarked errors are rare
         raise InputError(Where(source), f"YAML error: {exc}".splitlines()[0]) from None
     except (ValueError, OverflowError, RecursionError) as exc:  # a value PyYAML cannot build

@@ -218,3 +218,21 @@ def test_a_scan_into_a_folder_the_user_owns_is_refused(tmp_path, capsys):
                  "-o", str(tmp_path / "thesis")]) == 2
     assert "refusing to replace" in _one_line(capsys)
     assert (tmp_path / "thesis" / "chapter1.tex").read_text() == "years of work"
+
+
+def test_characters_yaml_forbids_are_named_by_line_and_column(tmp_path, capsys):
+    # YAML 1.1 allows no C0 control characters but tab and newline (YAML spec, section 5.1);
+    # the DEL character sits on line 4, column 29 of the text written here (counted by hand)
+    path = tmp_path / "phantom.yaml"
+    path.write_text(PHANTOM.replace("radius: 40", "radius: 4\x7f"))
+    assert main(["draw", str(path), "-o", str(tmp_path / "p.png")]) == 2
+    line = _one_line(capsys)
+    assert "phantom.yaml:4:" in line and "U+007F" in line, line
+
+
+def test_deep_flow_nesting_is_refused_in_linear_time(tmp_path, capsys):
+    # 20000 nested brackets: refused from the raw text before the parser sees them
+    path = tmp_path / "phantom.yaml"
+    path.write_text(PHANTOM + "  - " + "[" * 20000 + "]" * 20000 + "\n")
+    assert main(["draw", str(path), "-o", str(tmp_path / "p.png")]) == 2
+    assert "nested more than 64 deep" in _one_line(capsys)
