@@ -65,7 +65,7 @@ def _load(phantom_arg: str | None, scanner_arg: str | None):
     if phantom is not None and scanner is not None:
         dim = scanner.geometry.poses().dimension
         if phantom.dimension == 3 and dim == 2:
-            raise InputError(Where(str(scanner.source), field="geometry"),
+            raise InputError(scanner.geometry.where,
                              f"a 2-D scanner cannot scan the 3-D phantom '{phantom.name}'",
                              "a scanner with rows (parallel stack, cone) for 3-D phantoms")
     return phantom, scanner

@@ -74,6 +74,8 @@ def regular_file_problem(path: Path) -> str:
         return "not found"
     except OSError as exc:
         return f"cannot be examined ({exc.strerror})"
+    except (ValueError, UnicodeError):  # a NUL byte or a lone surrogate in the name
+        return "is not a usable file name (it holds a NUL byte or invalid characters)"
     if stat.S_ISDIR(mode):
         return "is a folder, not a file"
     if not stat.S_ISREG(mode):

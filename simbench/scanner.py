@@ -134,6 +134,15 @@ def _read(document: Any, source: str) -> Scanner:
     if physics is not None:
         from simbench.measure.config import check_beam
 
-        spectrum = scanner.spectrum(root.section("source").at("filtration"))
+        source_section = root.section("source")
+        try:
+            spectrum = scanner.spectrum(source_section.at("filtration"))
+        except InputError as error:
+            if error.where.line is not None or not source_section.has("spectrum_file"):
+                raise
+            # a problem with the spectrum file as a whole: named at the field that points to it
+            raise InputError(source_section.at("spectrum_file"),
+                             f"'{scanner.spectrum_file_path()}': {error.problem}",
+                             error.valid) from None
         check_beam(physics, root, geometry, spectrum)
     return scanner

@@ -107,24 +107,36 @@ def _check_structure(text: str, source: str) -> None:
     """Refuse nesting deeper than :data:`MAX_YAML_DEPTH` and absurdly long numbers, from the
     parser's events (an iterative pass, before any recursive construction)."""
     _check_flow_depth(text, source)
-    depth = 0
+    # a stack of [is_mapping, expecting_key, last_key]: enough to name the field of a value
+    stack: list = []
     for event in yaml.parse(text, Loader=_SAFE_LOADER):
         if isinstance(event, (yaml.MappingStartEvent, yaml.SequenceStartEvent)):
-            depth += 1
-            if depth > MAX_YAML_DEPTH:
+            if stack and stack[-1][0]:
+                stack[-1][1] = True  # this collection is the value of the last key
+            stack.append([isinstance(event, yaml.MappingStartEvent), True, ""])
+            if len(stack) > MAX_YAML_DEPTH:
                 mark = event.start_mark
                 raise InputError(Where(source, mark.line + 1, mark.column + 1, ""),
                                  f"lists and mappings nested more than {MAX_YAML_DEPTH} deep",
                                  f"at most {MAX_YAML_DEPTH} levels of nesting")
         elif isinstance(event, (yaml.MappingEndEvent, yaml.SequenceEndEvent)):
-            depth -= 1
-        elif (isinstance(event, yaml.ScalarEvent) and not event.style  # plain: None or ""
-              and len(event.value) > MAX_NUMBER_CHARACTERS and _NUMBER_LIKE.match(event.value)):
-            mark = event.start_mark
-            raise InputError(Where(source, mark.line + 1, mark.column + 1, ""),
-                             f"a number written with {len(event.value)} characters",
-                             f"a number of at most {MAX_NUMBER_CHARACTERS} characters, such as "
-                             "1.5e-3")
+            stack.pop()
+        elif isinstance(event, yaml.ScalarEvent):
+            in_mapping = bool(stack) and stack[-1][0]
+            if in_mapping and stack[-1][1]:
+                stack[-1][1], stack[-1][2] = False, event.value
+                continue
+            if (not event.style  # plain: None (PyYAML) or "" (libyaml)
+                    and len(event.value) > MAX_NUMBER_CHARACTERS
+                    and _NUMBER_LIKE.match(event.value)):
+                mark = event.start_mark
+                field = next((entry[2] for entry in reversed(stack) if entry[0]), "")
+                raise InputError(Where(source, mark.line + 1, mark.column + 1, field),
+                                 f"a number written with {len(event.value)} characters",
+                                 f"a number of at most {MAX_NUMBER_CHARACTERS} characters, "
+                                 "such as 1.5e-3")
+            if in_mapping:
+                stack[-1][1] = True
 
 
 def _code_point(character) -> int:
