@@ -30,6 +30,9 @@ EXAMPLES = {
     "reconstruct": "simbench reconstruct scan-out --algorithm fbp --option window=hann -o recon-out",
     "algorithms": "simbench algorithms",
     "run": "simbench run quickstart -o quickstart-run",
+    "compare": "simbench compare run-a run-b -o comparison",
+    "baseline": "simbench baseline quickstart-run -o baseline.yaml",
+    "check": "simbench check quickstart-run --baseline baseline.yaml --junit results.xml",
 }
 
 
@@ -213,6 +216,26 @@ def cmd_run(args: argparse.Namespace) -> int:
     run_scenario(scenario, Path(args.output), allow_code=args.allow_code,
                  progress=not args.quiet and sys.stderr.isatty())
     return 0
+
+
+def cmd_compare(args: argparse.Namespace) -> int:
+    from simbench.scenario.regression import compare_command
+
+    print(compare_command(args.runs, args.output))
+    return 0
+
+
+def cmd_baseline(args: argparse.Namespace) -> int:
+    from simbench.scenario.regression import baseline_command
+
+    print(baseline_command(args.run_folder, args.output))
+    return 0
+
+
+def cmd_check(args: argparse.Namespace) -> int:
+    from simbench.scenario.regression import check_command
+
+    return check_command(args.run_folder, args.baseline, args.junit, args.markdown)
 
 
 def cmd_algorithms(args: argparse.Namespace) -> int:
@@ -455,6 +478,27 @@ def build_parser() -> argparse.ArgumentParser:
                    help="allow the module paths and programs named in the scenario file to run")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.set_defaults(run=cmd_run)
+
+    p = command("compare", "Compare runs: one table across runs, algorithms and doses of the main "
+                           "metrics with their intervals; printed, and written as CSV and markdown.")
+    p.add_argument("runs", nargs="+", metavar="RUN", help="run folders written by 'simbench run'")
+    p.add_argument("-o", "--output", default=None, metavar="PREFIX",
+                   help="also write PREFIX.csv and PREFIX.md")
+    p.set_defaults(run=cmd_compare)
+
+    p = command("baseline", "Write a baseline file from a run, with default tolerances you can "
+                            "edit, for 'simbench check'.")
+    p.add_argument("run_folder", metavar="RUN", help="run folder written by 'simbench run'")
+    p.add_argument("-o", "--output", required=True, metavar="FILE.yaml", help="baseline file")
+    p.set_defaults(run=cmd_baseline)
+
+    p = command("check", "Check a run against a baseline: exit 1 if a metric regressed beyond "
+                         "its tolerance (decided on the realizations' statistics).")
+    p.add_argument("run_folder", metavar="RUN", help="run folder written by 'simbench run'")
+    p.add_argument("--baseline", required=True, metavar="FILE.yaml", help="baseline file")
+    p.add_argument("--junit", default=None, metavar="FILE.xml", help="write JUnit XML")
+    p.add_argument("--markdown", default=None, metavar="FILE.md", help="write a markdown summary")
+    p.set_defaults(run=cmd_check)
 
     p = command("algorithms", "List every reconstructor found: built-in, installed through "
                               "the simbench.reconstructors entry points, with stage and options.")
