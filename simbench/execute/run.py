@@ -158,6 +158,7 @@ def run_scenario(scenario, out: Path, *, allow_code: bool = False, progress: boo
     from simbench.folders import commit_folder
 
     plan = RunPlan(scenario, out, allow_code=allow_code)
+    _import_in_background("matplotlib.pyplot")  # the report needs it; the run has CPU to spare
     started = time.perf_counter()
     timings = dict.fromkeys(STAGES, 0.0)
     with commit_folder(out, "run") as staging, _progress(plan, progress) as bar:
@@ -180,6 +181,24 @@ def run_scenario(scenario, out: Path, *, allow_code: bool = False, progress: boo
         f"{scenario.realizations} realization(s) in {metrics['run']['wall_time_s']:.1f} s")
     say(f"report: {out / 'report.html'}")
     return metrics
+
+
+def _import_in_background(module: str) -> None:
+    """Import a module in a daemon thread (its import costs seconds; the run waits on numba
+    kernels meanwhile, and a later import in the main thread just finds it loaded)."""
+    import importlib
+    import threading
+
+    def load() -> None:
+        try:
+            import matplotlib
+
+            matplotlib.use("Agg")
+            importlib.import_module(module)
+        except Exception:  # noqa: BLE001 - the report's own import will say what is wrong
+            pass
+
+    threading.Thread(target=load, daemon=True, name=f"import {module}").start()
 
 
 class _NoBar:
@@ -275,6 +294,7 @@ def _one_view(plan):
 
 def _measure_reconstruct_score(staging: Path, plan: RunPlan, truth: _Truth, timings: dict,
                                bar) -> dict:
+    from simbench.execute.reconstruct import timed_reconstruction
     from simbench.execute.scan import TraceCache, scan_into
     from simbench.recon.contract import Acquisition
     from simbench.scenario.scoring import ScoringContext, score_realizations
@@ -327,8 +347,8 @@ def _measure_reconstruct_score(staging: Path, plan: RunPlan, truth: _Truth, timi
             bar.update(1)
             for spec, reconstructor, options in plan.algorithms:
                 bar.set_postfix_str(f"{spec.name}, {dose_label(dose)}, realization {r}")
-                image, seconds, peak = _reconstruct(reconstructor, acquisition, plan.grid,
-                                                    options)
+                image, seconds, peak = timed_reconstruction(reconstructor, acquisition,
+                                                            plan.grid, options)
                 timings["reconstruct"] += seconds
                 target = staging / "recon" / spec.name / dose_label(dose)
                 target.mkdir(parents=True, exist_ok=True)
@@ -348,17 +368,6 @@ def _measure_reconstruct_score(staging: Path, plan: RunPlan, truth: _Truth, timi
                 seeds=seeds[dose_label(dose)])
         timings["score"] += time.perf_counter() - t0
     return results
-
-
-def _reconstruct(reconstructor, acquisition, grid, options):
-    import resource
-
-    before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
-    t0 = time.perf_counter()
-    image = reconstructor.run(acquisition, grid, options)
-    seconds = time.perf_counter() - t0
-    peak = max(0, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024 - before)
-    return image, seconds, peak
 
 
 def _reprojection_rmse(plan: RunPlan, image: np.ndarray, exact) -> float:
