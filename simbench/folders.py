@@ -112,11 +112,11 @@ def commit_folder(final: str | Path, kind: str, *, say: Callable[[str], None] = 
         _clean_stale(final, say)
         _check_replaceable(final, kind, where)
         staging = parent / f".{final.name}.partial-{os.getpid()}-{secrets.token_hex(4)}"
-        try:
-            staging.mkdir()
-        except OSError as exc:
-            raise output_error(final, exc) from None
-        try:
+        try:  # made inside the try: a signal right after the mkdir still removes it
+            try:
+                staging.mkdir()
+            except OSError as exc:
+                raise output_error(final, exc) from None
             yield staging
             write_marker(staging, kind)
             _swap_into_place(staging, final)

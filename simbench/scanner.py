@@ -109,7 +109,8 @@ def parse_scanner_text(text: str, source: str = "<text>") -> Scanner:
 
 def _read(document: Any, source: str) -> Scanner:
     if document is None:
-        raise InputError(source, "scanner file is empty", "a mapping with name and geometry")
+        raise InputError(Where(source, 1, 1), "scanner file is empty",
+                         "a mapping with name and geometry")
     root = Section.root(document, source)
     root.check_keys(TOP_LEVEL_KEYS, required=("name", "geometry"))
     units = root.string("units", "mm", choices=("mm", "cm"))

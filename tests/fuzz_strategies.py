@@ -1008,7 +1008,7 @@ def _raw_header_npy(header: str) -> bytes:
 def _npy_mutation(draw, name: str, data: bytes, notes: list[str]) -> bytes:
     try:
         array = np.load(io.BytesIO(data), allow_pickle=False)
-    except (ValueError, OSError):
+    except (ValueError, OSError, EOFError, MemoryError):  # an earlier mutation forged it
         array = np.zeros((2, 2))
     op = draw(st.sampled_from(["forged", "forged", "dtype", "nan", "shape", "truncate", "text",
                                "empty", "pickle", "npz", "labels", "header", "endian"]))

@@ -299,11 +299,7 @@ def test_sigint_and_sigterm_end_with_one_line_and_no_temporary_files(slow_scan, 
     out = tmp_path / "scan"
     child = subprocess.Popen(_scan_command(tmp_path, out, 1), stdout=subprocess.PIPE,
                              stderr=subprocess.PIPE, text=True)
-    # wait until the staging folder exists: the scan is writing
-    deadline = time.time() + 120
-    while time.time() < deadline and not _leftovers(tmp_path, "scan"):
-        time.sleep(0.05)
-    assert _leftovers(tmp_path, "scan"), "the scan never started writing"
+    _wait_for_staging(tmp_path, "scan")  # the scan is writing
     child.send_signal(signum)
     stdout, stderr = child.communicate(timeout=60)
     assert child.returncode == code
