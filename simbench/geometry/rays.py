@@ -10,7 +10,9 @@ from numba import njit
 from simbench.geometry.poses import Poses
 
 
-@njit(cache=True, inline="always")
+# inlined by LLVM into the tracer's per-ray loops, without reference counting (it allocates
+# nothing; counting would cost atomic operations on every ray)
+@njit(cache=True, _nrt=False, forceinline=True)
 def detector_ray(parallel, curved, source, direction, detector_centre, u_axis, v_axis,
                  view, u_mm, v_mm, spot_u_mm, spot_v_mm):
     """The ray of view ``view`` that ends at detector point (u_mm, v_mm).

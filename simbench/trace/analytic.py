@@ -6,11 +6,22 @@ then traces every cell (and cell sample) of the row against those candidates onl
 buffers are allocated once per work block, never per ray.
 
 All kernels use numba's numpy error model (IEEE division, no exception checks) and float64
-without fastmath. Small helpers are inlined at numba IR level: a non-inlined call with array
-arguments costs atomic reference counting on every ray.
+without fastmath.
 
-Note: numba's on-disk cache does not notice edits to inlined helpers in other modules
-(``shapes.py``, ``simbench.geometry.rays``); after editing them, delete ``__pycache__``.
+How the kernels are compiled (the first trace compiles them; see docs/performance.md):
+
+- The body of the parallel loop is its own serial function (:func:`_trace_objects_block`),
+  so numba's parallel passes, whose cost grows much faster than the size of the loop body,
+  see only a call. It is inlined by LLVM (``forceinline``) into the parallel loop, where the
+  loop's arrays are known not to alias one another.
+- The per-ray helpers are inlined by LLVM, not at numba IR level (which costs far more
+  compile time), and those that take arrays are compiled without the runtime's reference
+  counting (``_nrt=False``: they allocate nothing): counted, every ray would pay several
+  atomic increments and decrements, which halves the tracer's speed.
+
+Note: numba's on-disk cache does not notice edits to helpers in other modules
+(``shapes.py``, ``simbench.geometry.rays``), whose code is compiled into these kernels;
+after editing them, delete ``__pycache__``.
 """
 
 from __future__ import annotations
@@ -221,7 +232,7 @@ def culling_windows(parallel, curved, source, direction, detector_centre, u_axis
 # --------------------------------------------------------------------------------------------
 
 
-@njit(cache=True, inline="always", error_model="numpy")
+@njit(cache=True, error_model="numpy", _nrt=False, forceinline=True)
 def _covered_insert(cs, ce, ncov, a, b):
     """Insert [a, b] into the sorted disjoint union ``cs[:ncov], ce[:ncov]``; new count."""
     i = 0
@@ -253,7 +264,7 @@ def _covered_insert(cs, ce, ncov, a, b):
     return ncov - shift
 
 
-@njit(cache=True, inline="always", error_model="numpy")
+@njit(cache=True, error_model="numpy", _nrt=False, forceinline=True)
 def trace_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, u, cand, n_cand, win,
               shape, centre, rotation, half_sizes, inv_half, params, mode, material,
               poly_start, poly_count, poly_xy, t0buf, t1buf, kbuf, cs, ce, crossings, acc):
@@ -266,7 +277,9 @@ def trace_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, u, cand, n_cand, win,
     union C of the replace intervals already seen, object k contributes
     ``|I_k| - |I_k intersect C|`` to its material; a replace object then joins C.
     """
-    n = 0
+    # (counters passed to helpers start as np.int64(0), not 0: numba would compile each
+    # helper a second time for the literal 0)
+    n = np.int64(0)
     for ci in range(n_cand):
         k = cand[ci]
         if u < win[k, 0] or u > win[k, 1]:
@@ -335,7 +348,7 @@ def trace_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, u, cand, n_cand, win,
             t1buf[n] = b
             kbuf[n] = k
             n += 1
-    ncov = 0
+    ncov = np.int64(0)
     for q in range(n - 1, -1, -1):
         k = kbuf[q]
         a = t0buf[q]
@@ -353,6 +366,64 @@ def trace_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, u, cand, n_cand, win,
             ncov = _covered_insert(cs, ce, ncov, a, b)
 
 
+@njit(cache=True, error_model="numpy", forceinline=True)
+def _trace_objects_block(blk, n_blocks, parallel, curved, source, direction, detector_centre,
+                         u_axis, v_axis, views, out_view0, col_u, row_v, cell_du, cell_dv,
+                         spot_u, spot_v, windows, shape, centre, rotation, half_sizes, inv_half,
+                         params, mode, material, poly_start, poly_count, poly_xy, max_intervals,
+                         max_poly, dv_max, out):
+    """Trace the tasks ``blk, blk + n_blocks, ...`` of a chunk; the number of bad rays."""
+    n_rows = row_v.shape[0]
+    n_cols = col_u.shape[0]
+    n_cell = cell_du.shape[0]
+    n_spot = spot_u.shape[0]
+    n_obj = shape.shape[0]
+    n_mat = out.shape[0]
+    n_tasks = views.shape[0] * n_spot * n_rows
+    cand = np.empty(n_obj, np.int64)
+    t0buf = np.empty(max_intervals)
+    t1buf = np.empty(max_intervals)
+    kbuf = np.empty(max_intervals, np.int64)
+    cs = np.empty(max_intervals + 1)
+    ce = np.empty(max_intervals + 1)
+    crossings = np.empty(max_poly + 1)
+    acc = np.zeros(n_mat)
+    n_bad = 0
+    for task in range(blk, n_tasks, n_blocks):
+        i = task // (n_spot * n_rows)
+        rem = task - i * (n_spot * n_rows)
+        f = rem // n_rows
+        r = rem - f * n_rows
+        view = views[i]
+        win = windows[i, f]
+        v_row = row_v[r]
+        n_cand = np.int64(0)  # (not the literal 0: trace_ray would compile twice)
+        for k in range(n_obj):
+            if win[k, 2] <= v_row + dv_max and win[k, 3] >= v_row - dv_max \
+                    and win[k, 0] <= win[k, 1]:
+                cand[n_cand] = k
+                n_cand += 1
+        for j in range(n_cols):
+            for s in range(n_cell):
+                u = col_u[j] + cell_du[s]
+                for m in range(n_mat):
+                    acc[m] = 0.0
+                if n_cand > 0:
+                    ox, oy, oz, dx, dy, dz, t_min, t_max = detector_ray(
+                        parallel, curved, source, direction, detector_centre, u_axis,
+                        v_axis, view, u, v_row + cell_dv[s], spot_u[f], spot_v[f])
+                    trace_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, u, cand, n_cand, win,
+                              shape, centre, rotation, half_sizes, inv_half, params,
+                              mode, material, poly_start, poly_count, poly_xy, t0buf, t1buf,
+                              kbuf, cs, ce, crossings, acc)
+                col = f * n_cell + s
+                for m in range(n_mat):
+                    if not math.isfinite(acc[m]):
+                        n_bad += 1
+                    out[m, out_view0 + i, r, j, col] = acc[m]
+    return n_bad
+
+
 @njit(parallel=True, cache=True, error_model="numpy")
 def trace_objects_chunk(parallel, curved, source, direction, detector_centre, u_axis, v_axis,
                         views, out_view0, col_u, row_v, cell_du, cell_dv, spot_u, spot_v,
@@ -364,60 +435,18 @@ def trace_objects_chunk(parallel, curved, source, direction, detector_centre, u_
     Returns the number of rays whose result is not finite (a ray running along the axis
     of an unbounded 2-D prism).
     """
-    n_views = views.shape[0]
-    n_rows = row_v.shape[0]
-    n_cols = col_u.shape[0]
-    n_cell = cell_du.shape[0]
-    n_spot = spot_u.shape[0]
-    n_obj = shape.shape[0]
-    n_mat = out.shape[0]
     dv_max = 0.0
-    for s in range(n_cell):
+    for s in range(cell_dv.shape[0]):
         dv_max = max(dv_max, abs(cell_dv[s]))
-    n_tasks = n_views * n_spot * n_rows
+    n_tasks = views.shape[0] * spot_u.shape[0] * row_v.shape[0]
     n_blocks = max(1, min(n_tasks, n_blocks))
     bad = np.zeros(n_blocks, np.int64)
     for blk in prange(n_blocks):
-        cand = np.empty(n_obj, np.int64)
-        t0buf = np.empty(max_intervals)
-        t1buf = np.empty(max_intervals)
-        kbuf = np.empty(max_intervals, np.int64)
-        cs = np.empty(max_intervals + 1)
-        ce = np.empty(max_intervals + 1)
-        crossings = np.empty(max_poly + 1)
-        acc = np.zeros(n_mat)
-        n_bad = 0
-        for task in range(blk, n_tasks, n_blocks):
-            i = task // (n_spot * n_rows)
-            rem = task - i * (n_spot * n_rows)
-            f = rem // n_rows
-            r = rem - f * n_rows
-            view = views[i]
-            win = windows[i, f]
-            v_row = row_v[r]
-            n_cand = 0
-            for k in range(n_obj):
-                if win[k, 2] <= v_row + dv_max and win[k, 3] >= v_row - dv_max \
-                        and win[k, 0] <= win[k, 1]:
-                    cand[n_cand] = k
-                    n_cand += 1
-            for j in range(n_cols):
-                for s in range(n_cell):
-                    u = col_u[j] + cell_du[s]
-                    for m in range(n_mat):
-                        acc[m] = 0.0
-                    if n_cand > 0:
-                        ox, oy, oz, dx, dy, dz, t_min, t_max = detector_ray(
-                            parallel, curved, source, direction, detector_centre, u_axis,
-                            v_axis, view, u, v_row + cell_dv[s], spot_u[f], spot_v[f])
-                        trace_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, u, cand, n_cand, win,
-                                  shape, centre, rotation, half_sizes, inv_half, params,
-                                  mode, material, poly_start, poly_count, poly_xy, t0buf, t1buf,
-                                  kbuf, cs, ce, crossings, acc)
-                    col = f * n_cell + s
-                    for m in range(n_mat):
-                        if not math.isfinite(acc[m]):
-                            n_bad += 1
-                        out[m, out_view0 + i, r, j, col] = acc[m]
-        bad[blk] = n_bad
+        # (the index as int64: numba types a prange index unsigned inside the parallel loop,
+        # which would compile the block function a second time, for uint64)
+        bad[blk] = _trace_objects_block(
+            np.int64(blk), n_blocks, parallel, curved, source, direction, detector_centre, u_axis, v_axis,
+            views, out_view0, col_u, row_v, cell_du, cell_dv, spot_u, spot_v, windows, shape,
+            centre, rotation, half_sizes, inv_half, params, mode, material, poly_start,
+            poly_count, poly_xy, max_intervals, max_poly, dv_max, out)
     return bad.sum()

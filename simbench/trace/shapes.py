@@ -8,6 +8,9 @@ calling, so the quadratics below are well conditioned however far away the ray s
 
 Convex shapes return ``(t_in, t_out)``; a miss returns ``t_in >= t_out``. The polygon prism
 writes several intervals into caller-owned buffers. All arithmetic is float64 without fastmath.
+
+LLVM inlines these functions into the tracer's kernels (``forceinline``); the polygon, which
+takes arrays, is compiled without reference counting (see :mod:`simbench.trace.analytic`).
 """
 
 from __future__ import annotations
@@ -20,7 +23,7 @@ from numba import njit
 _MISS = (np.inf, -np.inf)
 
 
-@njit(cache=True, inline="always", error_model="numpy")
+@njit(cache=True, error_model="numpy", forceinline=True)
 def _quadratic_roots(a, b_half, c):
     """Real roots (r0 <= r1) of ``a t^2 + 2 b_half t + c = 0``, stable form; ok=False if none.
 
@@ -44,7 +47,7 @@ def _quadratic_roots(a, b_half, c):
     return True, r0, r1
 
 
-@njit(cache=True, inline="always", error_model="numpy")
+@njit(cache=True, error_model="numpy", forceinline=True)
 def ellipsoid_interval(ox, oy, oz, dx, dy, dz, inv_a, inv_b, inv_c):
     """Chord of ``(x/a)^2 + (y/b)^2 + (z/c)^2 <= 1``, given the inverse semi-axes ``1/a``...
 
@@ -65,7 +68,7 @@ def ellipsoid_interval(ox, oy, oz, dx, dy, dz, inv_a, inv_b, inv_c):
     return r0, r1
 
 
-@njit(cache=True, inline="always", error_model="numpy")
+@njit(cache=True, error_model="numpy", forceinline=True)
 def ellipse_prism_interval(ox, oy, dx, dy, inv_a, inv_b):
     """Chord of the infinite elliptic prism ``(x/a)^2 + (y/b)^2 <= 1`` (any z), given the
     inverse semi-axes."""
@@ -85,7 +88,7 @@ def ellipse_prism_interval(ox, oy, dx, dy, inv_a, inv_b):
     return r0, r1
 
 
-@njit(cache=True, inline="always", error_model="numpy")
+@njit(cache=True, error_model="numpy", forceinline=True)
 def _slab(o, d, h, t0, t1):
     """Clip ``[t0, t1]`` to the slab ``|o + t d| <= h``."""
     if d != 0.0:
@@ -103,7 +106,7 @@ def _slab(o, d, h, t0, t1):
     return t0, t1
 
 
-@njit(cache=True, inline="always", error_model="numpy")
+@njit(cache=True, error_model="numpy", forceinline=True)
 def box_interval(ox, oy, oz, dx, dy, dz, a, b, c):
     """Chord of ``|x| <= a, |y| <= b, |z| <= c`` by slab clipping (Kay and Kajiya)."""
     t0, t1 = _slab(ox, dx, a, -np.inf, np.inf)
@@ -112,7 +115,7 @@ def box_interval(ox, oy, oz, dx, dy, dz, a, b, c):
     return t0, t1
 
 
-@njit(cache=True, inline="always", error_model="numpy")
+@njit(cache=True, error_model="numpy", forceinline=True)
 def rectangle_prism_interval(ox, oy, dx, dy, a, b):
     """Chord of the infinite prism ``|x| <= a, |y| <= b`` (any z)."""
     t0, t1 = _slab(ox, dx, a, -np.inf, np.inf)
@@ -120,7 +123,7 @@ def rectangle_prism_interval(ox, oy, dx, dy, a, b):
     return t0, t1
 
 
-@njit(cache=True, inline="always", error_model="numpy")
+@njit(cache=True, error_model="numpy", forceinline=True)
 def cylinder_interval(ox, oy, oz, dx, dy, dz, inv_a, inv_b, c):
     """Chord of the finite elliptic cylinder ``(x/a)^2 + (y/b)^2 <= 1, |z| <= c``, given
     ``1/a``, ``1/b`` and the half height ``c``."""
@@ -130,7 +133,7 @@ def cylinder_interval(ox, oy, oz, dx, dy, dz, inv_a, inv_b, c):
     return _slab(oz, dz, c, t0, t1)
 
 
-@njit(cache=True, inline="always", error_model="numpy")
+@njit(cache=True, error_model="numpy", forceinline=True)
 def cone_interval(ox, oy, oz, dx, dy, dz, r_low, r_high, c):
     """Chord of the truncated cone ``x^2 + y^2 <= r(z)^2, |z| <= c`` with both caps.
 
@@ -180,7 +183,7 @@ def cone_interval(ox, oy, oz, dx, dy, dz, r_low, r_high, c):
     return b0, b1
 
 
-@njit(cache=True, inline="always", error_model="numpy")
+@njit(cache=True, error_model="numpy", _nrt=False, forceinline=True)
 def polygon_prism_intervals(ox, oy, dx, dy, poly_xy, start, count, crossings,
                             out_t0, out_t1, n_out):
     """Intervals of the ray inside an infinite polygon prism (simple polygon, any winding).

@@ -26,7 +26,7 @@ from numba import njit, prange
 from simbench.geometry.rays import detector_ray
 
 
-@njit(cache=True, inline="always", error_model="numpy")
+@njit(cache=True, error_model="numpy", forceinline=True)
 def _first_plane(lo, spacing, index, direction, origin):
     """Parameter of the next plane crossed along one axis from voxel ``index``."""
     if direction > 0.0:
@@ -36,7 +36,7 @@ def _first_plane(lo, spacing, index, direction, origin):
     return np.inf
 
 
-@njit(cache=True, inline="always", error_model="numpy")
+@njit(cache=True, error_model="numpy", _nrt=False, forceinline=True)
 def siddon_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, lo, spacing, use_z,
                material_volume, mu_volume, use_mu, acc):
     """Accumulate one ray's voxel path lengths into ``acc``.
@@ -138,38 +138,53 @@ def siddon_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, lo, spacing, use_z,
             tnz = _first_plane(lo[2], spacing[2], iz, dz, oz)
 
 
-@njit(parallel=True, cache=True, error_model="numpy")
-def trace_voxels_chunk(parallel, curved, source, direction, detector_centre, u_axis, v_axis,
-                       views, out_view0, col_u, row_v, cell_du, cell_dv, spot_u, spot_v,
-                       lo, spacing, use_z, material_volume, mu_volume, use_mu, n_blocks, out):
-    """Trace a chunk of views through a voxel volume; writes
-    ``out[m, out_view0 + i, row, col, f * S + s]``."""
-    n_views = views.shape[0]
+@njit(cache=True, error_model="numpy", forceinline=True)
+def _trace_voxels_block(blk, n_blocks, parallel, curved, source, direction, detector_centre,
+                        u_axis, v_axis, views, out_view0, col_u, row_v, cell_du, cell_dv, spot_u,
+                        spot_v, lo, spacing, use_z, material_volume, mu_volume, use_mu, out):
+    """Trace the tasks ``blk, blk + n_blocks, ...`` of a chunk (one parallel block)."""
     n_rows = row_v.shape[0]
     n_cols = col_u.shape[0]
     n_cell = cell_du.shape[0]
     n_spot = spot_u.shape[0]
     n_mat = out.shape[0]
-    n_tasks = n_views * n_spot * n_rows
+    n_tasks = views.shape[0] * n_spot * n_rows
+    acc = np.zeros(n_mat)
+    for task in range(blk, n_tasks, n_blocks):
+        i = task // (n_spot * n_rows)
+        rem = task - i * (n_spot * n_rows)
+        f = rem // n_rows
+        r = rem - f * n_rows
+        view = views[i]
+        for j in range(n_cols):
+            for s in range(n_cell):
+                for m in range(n_mat):
+                    acc[m] = 0.0
+                ox, oy, oz, dx, dy, dz, t_min, t_max = detector_ray(
+                    parallel, curved, source, direction, detector_centre, u_axis, v_axis,
+                    view, col_u[j] + cell_du[s], row_v[r] + cell_dv[s], spot_u[f], spot_v[f])
+                siddon_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, lo, spacing, use_z,
+                           material_volume, mu_volume, use_mu, acc)
+                col = f * n_cell + s
+                for m in range(n_mat):
+                    out[m, out_view0 + i, r, j, col] = acc[m]
+
+
+@njit(parallel=True, cache=True, error_model="numpy")
+def trace_voxels_chunk(parallel, curved, source, direction, detector_centre, u_axis, v_axis,
+                       views, out_view0, col_u, row_v, cell_du, cell_dv, spot_u, spot_v,
+                       lo, spacing, use_z, material_volume, mu_volume, use_mu, n_blocks, out):
+    """Trace a chunk of views through a voxel volume; writes
+    ``out[m, out_view0 + i, row, col, f * S + s]``.
+
+    The body of the parallel loop is its own function, and the per-ray helpers are inlined by
+    LLVM without reference counting, as in :mod:`simbench.trace.analytic` (compile time).
+    """
+    n_tasks = views.shape[0] * spot_u.shape[0] * row_v.shape[0]
     n_blocks = max(1, min(n_tasks, n_blocks))
     for blk in prange(n_blocks):
-        acc = np.zeros(n_mat)
-        for task in range(blk, n_tasks, n_blocks):
-            i = task // (n_spot * n_rows)
-            rem = task - i * (n_spot * n_rows)
-            f = rem // n_rows
-            r = rem - f * n_rows
-            view = views[i]
-            for j in range(n_cols):
-                for s in range(n_cell):
-                    for m in range(n_mat):
-                        acc[m] = 0.0
-                    ox, oy, oz, dx, dy, dz, t_min, t_max = detector_ray(
-                        parallel, curved, source, direction, detector_centre, u_axis, v_axis,
-                        view, col_u[j] + cell_du[s], row_v[r] + cell_dv[s], spot_u[f],
-                        spot_v[f])
-                    siddon_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, lo, spacing, use_z,
-                               material_volume, mu_volume, use_mu, acc)
-                    col = f * n_cell + s
-                    for m in range(n_mat):
-                        out[m, out_view0 + i, r, j, col] = acc[m]
+        # (the index as int64: a prange index is unsigned inside the parallel loop)
+        _trace_voxels_block(np.int64(blk), n_blocks, parallel, curved, source, direction,
+                            detector_centre, u_axis, v_axis, views, out_view0, col_u, row_v,
+                            cell_du, cell_dv, spot_u, spot_v, lo, spacing, use_z,
+                            material_volume, mu_volume, use_mu, out)
