@@ -189,14 +189,18 @@ def _curved_window(s_centre, spot_u, spot_v, dc, uu, vv, c, radius, prism):
     return u_lo, u_hi, v_lo, v_hi
 
 
-@njit(parallel=True, cache=True, error_model="numpy")
+@njit(cache=True, error_model="numpy")
 def culling_windows(parallel, curved, source, direction, detector_centre, u_axis, v_axis,
                     views, spot_u, spot_v, centre, bound_radius, is_prism, out):
-    """Fill ``out[i, f, k] = (u_lo, u_hi, v_lo, v_hi)`` for chunk view i, spot f, object k."""
+    """Fill ``out[i, f, k] = (u_lo, u_hi, v_lo, v_hi)`` for chunk view i, spot f, object k.
+
+    Serial: a few hundred operations per view and object, far below the cost of tracing the
+    view's rays, and a parallel loop would cost more to compile than it saves.
+    """
     n_views = views.shape[0]
     n_spots = spot_u.shape[0]
     n_obj = centre.shape[0]
-    for i in prange(n_views):
+    for i in range(n_views):
         view = views[i]
         s = np.empty(3)
         for f in range(n_spots):
