@@ -566,7 +566,9 @@ def apply_readout(scan: np.ndarray, *, lag: float, gain: np.ndarray, dark_level:
             normals = normals.astype(np.float64, copy=False)
         normals = normals.reshape(scan.shape)
     else:
-        normals = np.empty((1, 1, 0))
+        # never read; float32 like the normals of an energy-integrating scan, so that noisy
+        # and noise-free scans share one compiled kernel
+        normals = np.empty((1, 1, 0), dtype=np.float32)
     top = np.inf if full_scale is None else float(full_scale)
     hot_arr = (np.zeros(n, dtype=np.bool_) if hot is None or full_scale is None
                else np.ascontiguousarray(hot, dtype=np.bool_).reshape(n))

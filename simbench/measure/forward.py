@@ -99,6 +99,65 @@ def exp_neg(tau):  # pragma: no cover - compiled
     return out
 
 
+@njit(cache=True, fastmath=_FAST, forceinline=True)
+def _expected_chunk(c, lengths, mu, weights, air, out):  # pragma: no cover - compiled
+    """Cells ``c * _CHUNK`` to ``(c + 1) * _CHUNK`` of :func:`_expected_kernel`; returns the
+    number of path lengths there that are NaN or infinite."""
+    n_mat, n_cells, n_sub = lengths.shape
+    n_bins, n_energy = weights.shape
+    fused = n_bins == 3
+    bad_here = 0
+    acc = np.empty(n_bins)
+    tau = np.empty(n_energy)
+    w0 = weights[0]
+    w1 = weights[min(1, n_bins - 1)]
+    w2 = weights[min(2, n_bins - 1)]
+    stop = min(n_cells, (c + 1) * _CHUNK)
+    for p in range(c * _CHUNK, stop):
+        for b in range(n_bins):
+            acc[b] = 0.0
+        for s in range(n_sub):
+            crossed = False
+            for m in range(n_mat):
+                v = lengths[m, p, s]
+                bad_here += not math.isfinite(v)
+                if v != 0.0:
+                    mu_m = mu[m]
+                    if crossed:
+                        for e in range(n_energy):
+                            tau[e] += mu_m[e] * v
+                    else:
+                        for e in range(n_energy):
+                            tau[e] = mu_m[e] * v
+                        crossed = True
+            if not crossed:
+                for b in range(n_bins):
+                    acc[b] += air[b]
+            elif fused:
+                s0 = 0.0
+                s1 = 0.0
+                s2 = 0.0
+                for e in range(n_energy):
+                    y = _exp_neg1(tau[e])
+                    s0 += w0[e] * y
+                    s1 += w1[e] * y
+                    s2 += w2[e] * y
+                acc[0] += s0
+                acc[1] += s1
+                acc[2] += s2
+            else:
+                for e in range(n_energy):
+                    tau[e] = _exp_neg1(tau[e])
+                for b in range(n_bins):
+                    t = 0.0
+                    for e in range(n_energy):
+                        t += weights[b, e] * tau[e]
+                    acc[b] += t
+        for b in range(n_bins):
+            out[b, p] = acc[b] / n_sub
+    return bad_here
+
+
 @njit(parallel=True, cache=True, fastmath=_FAST)
 def _expected_kernel(lengths, mu, weights, out):  # pragma: no cover - compiled
     """out[b, p] = mean_s sum_e W[b, e] exp(-sum_m mu[m, e] L[m, p, s]); returns the number
@@ -107,9 +166,11 @@ def _expected_kernel(lengths, mu, weights, out):  # pragma: no cover - compiled
     Per ray: the optical depth of every energy, the first crossed material assigning it (no
     zeroing pass), the others adding to it; then one fused loop over energies computes the
     exponential and accumulates it into three rows at once in registers (``n_bins == 3``, the
-    energy-integrating case; other counts go through a transmission buffer).
+    energy-integrating case; other counts go through a transmission buffer). The body of the
+    parallel loop is its own function, inlined by LLVM (numba's parallel passes cost compile
+    time that grows with the loop body).
     """
-    n_mat, n_cells, n_sub = lengths.shape
+    n_cells = lengths.shape[1]
     n_bins, n_energy = weights.shape
     air = np.zeros(n_bins)
     for b in range(n_bins):
@@ -117,60 +178,11 @@ def _expected_kernel(lengths, mu, weights, out):  # pragma: no cover - compiled
         for e in range(n_energy):
             s += weights[b, e]
         air[b] = s
-    fused = n_bins == 3
     n_chunks = (n_cells + _CHUNK - 1) // _CHUNK
     bad = 0
     for c in prange(n_chunks):
-        bad_here = 0
-        acc = np.empty(n_bins)
-        tau = np.empty(n_energy)
-        w0 = weights[0]
-        w1 = weights[min(1, n_bins - 1)]
-        w2 = weights[min(2, n_bins - 1)]
-        stop = min(n_cells, (c + 1) * _CHUNK)
-        for p in range(c * _CHUNK, stop):
-            for b in range(n_bins):
-                acc[b] = 0.0
-            for s in range(n_sub):
-                crossed = False
-                for m in range(n_mat):
-                    v = lengths[m, p, s]
-                    bad_here += not math.isfinite(v)
-                    if v != 0.0:
-                        mu_m = mu[m]
-                        if crossed:
-                            for e in range(n_energy):
-                                tau[e] += mu_m[e] * v
-                        else:
-                            for e in range(n_energy):
-                                tau[e] = mu_m[e] * v
-                            crossed = True
-                if not crossed:
-                    for b in range(n_bins):
-                        acc[b] += air[b]
-                elif fused:
-                    s0 = 0.0
-                    s1 = 0.0
-                    s2 = 0.0
-                    for e in range(n_energy):
-                        y = _exp_neg1(tau[e])
-                        s0 += w0[e] * y
-                        s1 += w1[e] * y
-                        s2 += w2[e] * y
-                    acc[0] += s0
-                    acc[1] += s1
-                    acc[2] += s2
-                else:
-                    for e in range(n_energy):
-                        tau[e] = _exp_neg1(tau[e])
-                    for b in range(n_bins):
-                        t = 0.0
-                        for e in range(n_energy):
-                            t += weights[b, e] * tau[e]
-                        acc[b] += t
-            for b in range(n_bins):
-                out[b, p] = acc[b] / n_sub
-        bad += bad_here
+        # (the index as int64: a prange index is unsigned inside the parallel loop)
+        bad += _expected_chunk(np.int64(c), lengths, mu, weights, air, out)
     return bad
 
 
