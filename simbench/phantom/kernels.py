@@ -201,7 +201,7 @@ def rasterize_objects(xs, ys, zs, offx, offy, offz, hx, hy, hz, shape, centre, r
         cand = np.empty(n_row, np.int64)  # one scratch list per row of cells
         for ix in range(nx):
             cx, cy, cz = xs[ix], ys[iy], zs[iz]
-            n_cand = 0
+            n_cand = np.int64(0)  # (not the literal 0: _compose would compile twice)
             undecided = False
             for i in range(n_row):
                 k = row_obj[i]
@@ -260,7 +260,7 @@ def label_objects(xs, ys, zs, offx, offy, offz, shape, centre, rotation, half, p
         # objects that can contain a sub-sample of this row (contains() refuses points
         # farther than the bounding radius), in painting order
         cand = np.empty(n_obj, np.int64)
-        n_cand = 0
+        n_cand = np.int64(0)  # (not the literal 0: _label_at would compile twice)
         for k in range(n_obj):
             code = shape[k]
             prism = code == ELLIPSE_2D or code == RECTANGLE_2D or code == POLYGON_2D
