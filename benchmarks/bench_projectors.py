@@ -11,18 +11,14 @@ Run: ``python -m pytest benchmarks/bench_projectors.py --benchmark-only -s``
 
 from __future__ import annotations
 
-import os
-import subprocess
 import sys
-import tempfile
 import textwrap
 import time
 from pathlib import Path
 
-import llvmlite.binding as llvm
-import numba
 import numpy as np
 import pytest
+from support import compile_in_empty_cache, cpu
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
@@ -36,11 +32,6 @@ N, N_VIEWS = 512, 720
 #: timed runs of each of our calls (the best counts); scikit-image runs once (seconds)
 ROUNDS = 3
 
-
-def cpu() -> str:
-    """The CPU numba compiles for, and the threads it runs."""
-    name = numba.config.CPU_NAME or llvm.get_host_cpu_name()
-    return f"[numba {numba.__version__} for {name}, {numba.get_num_threads()} threads]"
 
 
 @pytest.fixture(scope="module")
@@ -131,14 +122,7 @@ COMPILE_SCRIPT = textwrap.dedent("""
 
 def test_compile_time_into_an_empty_cache(benchmark):
     # a fresh process with an empty NUMBA_CACHE_DIR compiles every projector kernel once
-    def compile_once():
-        with tempfile.TemporaryDirectory() as cache:
-            env = dict(os.environ, NUMBA_CACHE_DIR=cache)
-            done = subprocess.run([sys.executable, "-c", COMPILE_SCRIPT], env=env,
-                                  capture_output=True, text=True, check=True)
-            return tuple(float(v) for v in done.stdout.split()[-2:])
-
-    wall_s, cpu_s = benchmark.pedantic(compile_once, rounds=1, iterations=1)
+    wall_s, cpu_s = benchmark.pedantic(compile_in_empty_cache, args=(COMPILE_SCRIPT,), rounds=1, iterations=1)
     benchmark.extra_info.update(cpu=cpu(), compile_s=wall_s, compile_cpu_s=cpu_s)
     print(f"\nprojector kernels compiled into an empty cache in {wall_s:.1f} s "
           f"({cpu_s:.1f} s of CPU time) {cpu()}")
