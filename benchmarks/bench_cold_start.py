@@ -28,9 +28,8 @@ import tempfile
 import time
 from pathlib import Path
 
-import llvmlite.binding as llvm
-import numba
 import pytest
+from support import cpu as cpu_line
 
 SCENARIO = os.environ.get("SIMBENCH_COLD_SCENARIO", "quickstart")
 #: warm runs of the scenario (the best counts)
@@ -40,11 +39,9 @@ SMALL_ROUNDS = 5
 
 
 def cpu() -> str:
-    """The CPU numba compiles for, its threads, and the machine's load."""
-    name = numba.config.CPU_NAME or llvm.get_host_cpu_name()
+    """The CPU numba compiles for and its threads, with the machine's cores and load."""
     load = ", ".join(f"{x:.1f}" for x in os.getloadavg())
-    return (f"[numba {numba.__version__} for {name}, {numba.get_num_threads()} threads, "
-            f"{os.cpu_count()} cores, load {load}]")
+    return f"{cpu_line()} [{os.cpu_count()} cores, load {load}]"
 
 
 def run_child(args: list[str], env: dict) -> tuple[float, float, subprocess.CompletedProcess]:
