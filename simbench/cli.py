@@ -14,8 +14,6 @@ import time
 import warnings
 from pathlib import Path
 
-import numpy as np
-
 import simbench
 from simbench.data import shipped_files
 from simbench.errors import InputError, Where
@@ -86,6 +84,8 @@ def _check_output(path: str, suffix: str, option: str = "-o") -> Path:
 
 
 def cmd_trace(args: argparse.Namespace) -> int:
+    import numpy as np
+
     from simbench.atomic import write_json, write_npy
     from simbench.budget import check_bytes
     from simbench.execute.scan import edge_columns, warn_if_truncated
@@ -281,9 +281,11 @@ def cmd_list(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
+    import numpy as np
+
     out = Path(args.output)
     print(simbench.CAUTION)
-    print("(The first run compiles the numba kernels, about a minute on 2 cores; they are "
+    print("(The first run compiles the numba kernels, under a minute on 2 cores; they are "
           "cached for later runs.)")
     steps = [
         ["draw", "water-ellipse-inserts", "-o", str(out / "water-ellipse-inserts.png")],
@@ -314,6 +316,8 @@ def cmd_demo(args: argparse.Namespace) -> int:
 def _demo_comparison(scan: Path, reconstruction: Path, path: Path) -> Path:
     """Truth (rasterized at the scan's reference energy on the reconstruction's grid),
     reconstruction and difference, in HU."""
+    import numpy as np
+
     import json
 
     from simbench.folders import verify_folder
