@@ -610,6 +610,29 @@ def parse_energy(value: Any, where: Where) -> float:
     return number * ENERGY_UNITS_KEV[unit]
 
 
+#: lengths any file may hold, phantom and scanner alike: 10 nm to 100 m
+MIN_LENGTH_MM = 1e-5
+MAX_LENGTH_MM = 1e5
+
+
+def check_span(mm: float, where: Where, valid: str, *, prefix: str = "",
+               small: str = "shorter than 10 nm", large: str = "longer than 100 m",
+               low: float = MIN_LENGTH_MM, high: float = MAX_LENGTH_MM) -> float:
+    """A positive length (already in mm) within [low, high], else one line: ``<prefix><mm>
+    mm is <small|large>`` (NaN counts as too large)."""
+    if not low <= mm <= high:
+        raise InputError(where, f"{prefix}{mm:.6g} mm is {small if mm < low else large}", valid)
+    return mm
+
+
+def check_within(mm: float, where: Where, what: str, valid: str,
+                 limit: float = MAX_LENGTH_MM) -> float:
+    """A signed length (already in mm) within +-limit (100 m by default), else one line."""
+    if not abs(mm) <= limit:
+        raise InputError(where, f"{what} {mm:.6g} mm is beyond 100 m", valid)
+    return mm
+
+
 def parse_vector(value: Any, where: Where, count: int, parse_item) -> tuple:
     """A list of exactly ``count`` items, each read with ``parse_item(item, where)``."""
     if not isinstance(value, list) or len(value) != count:

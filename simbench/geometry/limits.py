@@ -9,19 +9,20 @@ a phantom can hold, a scanner can be sized to see.
 from __future__ import annotations
 
 from simbench.budget import check_bytes
-from simbench.errors import InputError, Where
-from simbench.spec import Section
+from simbench.errors import Where
+from simbench.spec import (MAX_LENGTH_MM, MIN_LENGTH_MM, Section, check_span,
+                           check_within)
 
 #: Most views of one scan: a helical scan of 500 turns at 2000 views per turn.
 MAX_VIEWS = 1_000_000
 #: Most detector columns, and most rows: beyond the largest panels and line detectors
 #: (a few thousand to about 15 000 cells; recalled from memory).
 MAX_CELLS = 100_000
-#: Smallest pitch, SID or SDD, mm: 10 nm, the phantom language's smallest size.
-MIN_LENGTH_MM = 1e-5
+#: Smallest pitch, SID or SDD, mm: 10 nm, the phantom language's smallest size
+#: (simbench.spec.MIN_LENGTH_MM).
 #: Largest pitch, SID, SDD, |offset|, |table feed|, |start z|, detector width and |position|
-#: of an explicit pose, mm: 100 m, the phantom language's largest length.
-MAX_LENGTH_MM = 1e5
+#: of an explicit pose, mm: 100 m, the phantom language's largest length
+#: (simbench.spec.MAX_LENGTH_MM).
 #: Largest |start_angle|, degrees: one turn reaches every orientation.
 MAX_START_ANGLE_DEG = 360.0
 #: Longest helical arc, degrees: 1000 turns.
@@ -40,17 +41,12 @@ SHIFT_VALID = f"a length within +-{MAX_LENGTH_MM:g} mm (100 m)"
 
 def check_length(mm: float, where: Where) -> float:
     """A positive length (already in mm) within [MIN_LENGTH_MM, MAX_LENGTH_MM]."""
-    if not MIN_LENGTH_MM <= mm <= MAX_LENGTH_MM:
-        side = "shorter than 10 nm" if mm < MIN_LENGTH_MM else "longer than 100 m"
-        raise InputError(where, f"{mm:.6g} mm is {side}", LENGTH_VALID)
-    return mm
+    return check_span(mm, where, LENGTH_VALID)
 
 
 def check_shift(mm: float, where: Where, what: str = "length") -> float:
     """A signed length (already in mm) within +-MAX_LENGTH_MM."""
-    if not abs(mm) <= MAX_LENGTH_MM:
-        raise InputError(where, f"{what} {mm:.6g} mm is beyond 100 m", SHIFT_VALID)
-    return mm
+    return check_within(mm, where, what, SHIFT_VALID)
 
 
 def length(section: Section, key: str, default: float | None = None) -> float:

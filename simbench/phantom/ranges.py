@@ -12,15 +12,16 @@ import math
 from typing import Any
 
 from simbench.errors import InputError, Where
-from simbench.spec import Section, parse_length, parse_vector
+from simbench.spec import (MAX_LENGTH_MM, MIN_LENGTH_MM, Section, check_span, check_within,
+                           parse_length, parse_vector)
 
 #: Smallest size (radius, semi-axis, side, height, bar width, voxel size), mm: 10 nm, below the
 #: finest resolution of any X-ray CT (about 50 nm in nano-CT; recalled from memory).
-MIN_SIZE_MM = 1e-5
+MIN_SIZE_MM = MIN_LENGTH_MM
 #: Largest size and largest coordinate written in a file, mm: 100 m, beyond the largest objects
 #: scanned by industrial CT (cargo containers, about 12 m; recalled from memory). With
 #: MIN_SIZE_MM it spans 1e10, so float64 (16 digits) keeps 6 digits at the smallest size.
-MAX_LENGTH_MM = 1e5
+#: (simbench.spec.MAX_LENGTH_MM, shared with scanner files.)
 #: Largest distance of any part of a placed object from the origin, mm, after its groups and
 #: patterns have moved it (nested placements add up, so this is ten times MAX_LENGTH_MM).
 MAX_EXTENT_MM = 1e6
@@ -42,23 +43,15 @@ POSITION_VALID = (f"a length within +-{MAX_LENGTH_MM:g} mm (100 m), such as 20, 
 ANGLE_VALID = f"an angle from -{MAX_ANGLE_DEG:g} to {MAX_ANGLE_DEG:g} degrees, such as 30 or '30 deg'"
 
 
-def _mm(value: float) -> str:
-    return f"{value:.6g} mm"
-
-
 def check_size(mm: float, where: Where) -> float:
     """A size (already parsed, in mm) within [MIN_SIZE_MM, MAX_LENGTH_MM]."""
-    if not MIN_SIZE_MM <= mm <= MAX_LENGTH_MM:
-        side = "smaller than 10 nm" if mm < MIN_SIZE_MM else "larger than 100 m"
-        raise InputError(where, f"size {_mm(mm)} is {side}", SIZE_VALID)
-    return mm
+    return check_span(mm, where, SIZE_VALID, prefix="size ", small="smaller than 10 nm",
+                      large="larger than 100 m", low=MIN_SIZE_MM)
 
 
 def check_position(mm: float, where: Where, what: str = "coordinate") -> float:
     """A coordinate or vector component (already parsed, in mm) within +-MAX_LENGTH_MM."""
-    if not abs(mm) <= MAX_LENGTH_MM:
-        raise InputError(where, f"{what} {_mm(mm)} is beyond 100 m", POSITION_VALID)
-    return mm
+    return check_within(mm, where, what, POSITION_VALID)
 
 
 def size(s: Section, key: str, default: Any = None) -> float:
