@@ -25,7 +25,7 @@ EXAMPLES = {
     "spectrum": "simbench spectrum fan-clinical -o spectrum.png",
     "list": "simbench list",
     "demo": "simbench demo -o simbench-demo",
-    "reconstruct": "simbench reconstruct scan-out --algorithm fbp --option window=hann -o recon-out",
+    "reconstruct": "simbench reconstruct scan-out --algorithm fbp --option filter=hann -o recon-out",
     "algorithms": "simbench algorithms",
     "run": "simbench run quickstart -o quickstart-run",
     "compare": "simbench compare run-a run-b -o comparison",
@@ -201,7 +201,7 @@ def cmd_reconstruct(args: argparse.Namespace) -> int:
         key, sep, value = text.partition("=")
         if not sep or not key.strip():
             raise InputError(Where("<command line>", field="--option"),
-                             f"'{text}' is not KEY=VALUE", "an option such as window=hann")
+                             f"'{text}' is not KEY=VALUE", "an option such as filter=hann")
         options[key.strip()] = value.strip()
     print(run_reconstruction(Path(args.scan), reconstructor, options, Path(args.output),
                              grid_options=(args.grid_size, args.voxel_size, args.grid_centre)))

@@ -73,8 +73,10 @@ def grid_from_options(poses: Poses, size: str | None, voxel: str | None,
             values = []
         if len(values) not in counts or not all(math.isfinite(v) and low <= v <= high
                                                 for v in values):
-            raise InputError(where, f"'{text}' is not valid", f"{' or '.join(map(str, counts))} "
-                             f"comma-separated values from {low:g} to {high:g}")
+            how_many = " or ".join(map(str, counts))
+            raise InputError(where, f"'{text}' is not valid",
+                             f"{how_many} value{'s' if counts != (1,) else ''} (comma-separated) "
+                             f"from {low:g} to {high:g}")
         return values
 
     shape, spacing, middle = list(base.shape), list(base.spacing_mm), list(base.centre_mm)
