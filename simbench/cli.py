@@ -7,6 +7,7 @@ Every bad input ends as one line on standard error, ``simbench: error: <file>:<l
 from __future__ import annotations
 
 import argparse
+import importlib
 import signal
 import sys
 import threading
@@ -404,6 +405,11 @@ class _Parser(argparse.ArgumentParser):
         raise SystemExit(2)
 
 
+#: modules with ``add_commands(command)``, where ``command(name, help, example)`` returns the
+#: sub-parser to fill; they import nothing heavy at module level (``--help`` stays fast)
+COMMAND_MODULES = ("simbench.cli_scale", "simbench.cli_export")
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(
         prog="simbench",
@@ -415,9 +421,9 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"simbench {simbench.__version__}")
     commands = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
 
-    def command(name: str, help_text: str) -> argparse.ArgumentParser:
+    def command(name: str, help_text: str, example: str | None = None) -> argparse.ArgumentParser:
         sub = commands.add_parser(name, help=help_text, description=help_text,
-                                  epilog=f"example: {EXAMPLES[name]}")
+                                  epilog=f"example: {example or EXAMPLES[name]}")
         sub.add_argument("--memory-budget", metavar="SIZE", default=None,
                          help="refuse work estimated to need more memory than this, e.g. '8 GiB' "
                               "(default: $SIMBENCH_MEMORY_BUDGET, else 80%% of available memory)")
@@ -521,6 +527,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("-o", "--output", default="simbench-demo", metavar="DIR",
                    help="output folder (default simbench-demo)")
     p.set_defaults(run=cmd_demo)
+    for module in COMMAND_MODULES:  # commands kept beside the code they drive
+        importlib.import_module(module).add_commands(command)
     return parser
 
 
