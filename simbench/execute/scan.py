@@ -195,13 +195,58 @@ def scan_into(folder: Path, plan: "ScanPlan", *, seed: int, noise: bool, identit
     ScanState
         Timings, starvation count, frames and measurement metadata of the first block.
     """
+    with _ScanOutputs(folder, plan, write_truth) as outputs:
+        return _scan_blocks(plan, outputs, lengths, seed=seed, noise=noise, identity=identity,
+                            reference_energy_kev=reference_energy_kev)
+
+
+#: every array a scan makes, by the name :func:`scan_arrays` returns it under
+SCAN_ARRAYS = ("counts", "projections", "flat", "dark", "line_integrals", "path_lengths")
+
+
+def scan_arrays(plan: "ScanPlan", *, seed: int, noise: bool, identity: tuple,
+                keep: tuple = ("counts", "projections", "flat", "dark", "line_integrals"),
+                reference_energy_kev: float | None = None,
+                lengths: "TraceCache | None" = None) -> tuple[dict, "ScanState"]:
+    """Measure one scan block by block into arrays in memory (no folder).
+
+    The same scan as :func:`scan_into`, bit for bit, for callers that store the arrays
+    elsewhere (a dataset shard): only the arrays named in ``keep`` are held.
+
+    Parameters
+    ----------
+    plan : ScanPlan
+    seed, noise, identity, reference_energy_kev, lengths
+        As for :func:`scan_into`.
+    keep : tuple of str
+        Names from :data:`SCAN_ARRAYS`: ``counts`` and ``projections`` (float32, the
+        projection layout), ``flat`` and ``dark`` (float32 frames), ``line_integrals``
+        (float64, at the reference energy) and ``path_lengths`` (float64, per material).
+
+    Returns
+    -------
+    arrays : dict of str to ndarray
+        The arrays named in ``keep``.
+    state : ScanState
+    """
+    unknown = set(keep) - set(SCAN_ARRAYS)
+    if unknown:
+        raise ValueError(f"unknown scan arrays {sorted(unknown)}; valid: {SCAN_ARRAYS}")
+    outputs = _MemoryOutputs(plan, keep)
+    state = _scan_blocks(plan, outputs, lengths, seed=seed, noise=noise, identity=identity,
+                         reference_energy_kev=reference_energy_kev)
+    return outputs.arrays, state
+
+
+def _scan_blocks(plan: "ScanPlan", outputs, lengths: "TraceCache | None", *, seed: int,
+                 noise: bool, identity: tuple, reference_energy_kev: float | None
+                 ) -> "ScanState":
     lengths = lengths or TraceCache(plan, keep=False)
     state = ScanState(plan, seed=seed, noise=noise, identity=identity,
                       reference_energy_kev=reference_energy_kev)
-    with _ScanOutputs(folder, plan, write_truth) as outputs:
-        for views in plan.blocks():
-            _scan_block(plan, state, views, outputs, lengths)
-        outputs.write_frames(state.calibration)
+    for views in plan.blocks():
+        _scan_block(plan, state, views, outputs, lengths)
+    outputs.write_frames(state.calibration)
     return state
 
 
@@ -322,6 +367,29 @@ class _ScanOutputs:
             path = self.staging / "measured" / f"{name}.npy"
             np.save(path, np.asarray(frame, dtype=np.float32), allow_pickle=False)
 
+    def wants(self, name: str) -> bool:
+        return self.write_truth or name not in ("path_lengths", "line_integrals")
+
+
+class _MemoryOutputs:
+    """The scan's arrays in memory, only those asked for (:func:`scan_arrays`)."""
+
+    def __init__(self, plan: ScanPlan, keep):
+        self.plan, self.keep, self.arrays = plan, frozenset(keep), {}
+
+    def wants(self, name: str) -> bool:
+        return name in self.keep
+
+    def array(self, name: str, folder: str, dtype, shape) -> np.ndarray:
+        if name not in self.arrays:
+            self.arrays[name] = np.empty(tuple(shape), dtype=dtype)
+        return self.arrays[name]
+
+    def write_frames(self, calibration) -> None:
+        for name, frame in (("flat", calibration[0]), ("dark", calibration[1])):
+            if name in self.keep:
+                self.arrays[name] = np.asarray(frame, dtype=np.float32)
+
 
 def _scan_block(plan: ScanPlan, state: ScanState, views: np.ndarray,
                 outputs: _ScanOutputs, cache: TraceCache) -> None:
@@ -363,15 +431,18 @@ def _scan_block(plan: ScanPlan, state: ScanState, views: np.ndarray,
     for name in ("counts", "projections"):
         block = np.asarray(getattr(result, name))
         _check_finite(block, name, plan.scanner.source, "exposure", views)
+        if not outputs.wants(name):
+            continue
         full = list(block.shape)
         full[view_axis] = plan.poses.n_views
         target = outputs.array(name, "measured", np.float32, full)  # ARCHITECTURE dtypes
         block32 = block.astype(np.float32)
         _check_finite(block32, f"{name} (in float32)", plan.scanner.source, "exposure", views)
         target[(slice(None),) * view_axis + (views,)] = block32
-    if outputs.write_truth:
+    if outputs.wants("path_lengths"):
         outputs.array("path_lengths", "truth", np.float64,
                       (plan.n_materials,) + plan.shape)[:, views] = centre
+    if outputs.wants("line_integrals"):
         outputs.array("line_integrals", "truth", np.float64, plan.shape)[views] = truth
 
 
