@@ -146,8 +146,20 @@ def cmd_trace(args: argparse.Namespace) -> int:
     return 0
 
 
+def _whole_option(text: str, option: str) -> int:
+    """A whole number >= 0 from a command-line option (a seed or a sample index)."""
+    from simbench.spec import check_integer
+
+    try:
+        value = int(text)
+    except ValueError:
+        value = text
+    return check_integer(value, Where("<command line>", field=option), minimum=0,
+                         maximum=2**63 - 1)
+
+
 def cmd_draw(args: argparse.Namespace) -> int:
-    from simbench.phantom import load_phantom
+    from simbench.phantom.families import load_family
     from simbench.report.drawing import draw_phantom
 
     out = _check_output(args.output, ".png")
@@ -159,9 +171,13 @@ def cmd_draw(args: argparse.Namespace) -> int:
     # than the image with labels and colour bar), measured on the shipped phantoms
     check_bytes(64.0 * pixels * pixels, Where("<command line>", field="--pixels"),
                 f"a {pixels} x {pixels} drawing", "fewer pixels")
-    phantom = load_phantom(resolve(args.phantom, "phantoms"))
+    seed = _whole_option(args.seed, "--seed")
+    sample = _whole_option(args.sample, "--sample")
+    family = load_family(resolve(args.phantom, "phantoms"))
+    phantom, _ = family.sample(seed, sample)
     draw_phantom(phantom, out, energy_kev=energy, pixels=pixels)
-    print(f"wrote {out} ({phantom.name}, mu at {energy:g} keV)")
+    drawn = f", sample {sample} of seed {seed}" if family.is_random else ""
+    print(f"wrote {out} ({phantom.name}{drawn}, mu at {energy:g} keV)")
     return 0
 
 
@@ -215,7 +231,7 @@ def cmd_run(args: argparse.Namespace) -> int:
 
     scenario = load_scenario(resolve(args.scenario, "scenarios"))
     run_scenario(scenario, Path(args.output), allow_code=args.allow_code,
-                 progress=not args.quiet and sys.stderr.isatty())
+                 progress=not args.quiet and sys.stderr.isatty(), reuse=not args.fresh)
     return 0
 
 
@@ -443,6 +459,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--energy", default="60", metavar="KEV", help="energy for mu, keV (default 60)")
     p.add_argument("--pixels", default="512", metavar="N",
                    help=f"image size, {PIXELS_RANGE[0]} to {PIXELS_RANGE[1]} (default 512)")
+    p.add_argument("--seed", default="0", metavar="N",
+                   help="root seed of a phantom with a random section (default 0)")
+    p.add_argument("--sample", default="0", metavar="N",
+                   help="sample index of a phantom with a random section (default 0)")
     p.set_defaults(run=cmd_draw)
 
     p = command("scan", "Scan a phantom: raw counts, flat and dark frames and projections, "
@@ -487,6 +507,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--allow-code", action="store_true",
                    help="allow the module paths and programs named in the scenario file to run")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--fresh", action="store_true",
+                   help="make everything again (default: take over the finished truth, "
+                        "measurements and built-in reconstructions of an interrupted or earlier "
+                        "run into DIR whose inputs are unchanged, and say so)")
     p.set_defaults(run=cmd_run)
 
     p = command("compare", "Compare runs: one table across runs, algorithms and doses of the main "

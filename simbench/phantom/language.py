@@ -52,7 +52,8 @@ SHAPE_KEYS = {
     "cylinder": ("radius", "semi_axes", "height", "axis", "rotate"),
     "cone": ("base_radius", "top_radius", "height", "axis", "rotate"),
 }
-TOP_KEYS = ("name", "dimension", "units", "description", "materials", "objects", "voxels")
+TOP_KEYS = ("name", "dimension", "units", "description", "materials", "objects", "voxels",
+            "random")
 #: copies of one pattern; the total over the document is limited by
 #: :data:`simbench.phantom.expansion.MAX_OBJECTS` (checked first)
 MAX_COPIES = MAX_OBJECTS
@@ -117,7 +118,24 @@ class Reader:
 
 
 def read_document(document: Any, source: str, directory: Path | None) -> C.Phantom:
-    """Turn a located YAML document into a :class:`~simbench.phantom.compiled.Phantom`."""
+    """Turn a located YAML document into a :class:`~simbench.phantom.compiled.Phantom`.
+
+    A document with a ``random`` section gives its sample 0 under root seed 0 (see
+    :mod:`simbench.phantom.families` for other samples).
+    """
+    return read_sample(document, source, directory)[0]
+
+
+def read_sample(document: Any, source: str, directory: Path | None, root_seed: int = 0,
+                index: int = 0) -> tuple[C.Phantom, dict]:
+    """Read a located YAML document and draw sample ``index`` of its ``random`` section.
+
+    Returns
+    -------
+    phantom : Phantom
+    parameters : dict
+        The drawn values (``{}`` without a ``random`` section).
+    """
     if document is None:
         raise InputError(Where(source, 1, 1), "the phantom file is empty",
                          "a mapping with name, dimension and objects (or voxels)")
@@ -131,31 +149,46 @@ def read_document(document: Any, source: str, directory: Path | None) -> C.Phant
         raise top.error("dimension", f"must be 2 or 3, got {dimension}", "2 or 3")
     R.text(top, "description", "")
     has_objects, has_voxels = top.has("objects"), top.has("voxels")
-    if has_objects == has_voxels:
+    has_random = top.has("random")
+    if has_random and has_voxels:
+        raise top.error("random", "a voxel phantom cannot have a random section",
+                        "a random section beside an 'objects' list, or none")
+    if has_objects == has_voxels and not (has_random and not has_voxels):
         raise InputError(top.where.child("objects"),
                          "a phantom needs exactly one of 'objects' and 'voxels'"
                          + (", got both" if has_objects else ", got neither"),
                          "an 'objects' list for an analytic phantom or a 'voxels' section")
-    if has_objects:
-        check_expansion(top)
+    fixed = check_expansion(top) if has_objects else None
     reader = Reader(source, dimension, directory)
     materials = top.section("materials", None)
     if materials is not None:
         _read_custom_materials(reader, materials)
     voxels = placed = None
-    if has_objects:
-        items = top.sequence("objects")
-        if not items:
+    parameters: dict = {}
+    if has_objects or has_random:
+        drawn = None
+        if has_random:
+            from simbench.phantom.families import read_random
+
+            drawn = read_random(top, reader, fixed.objects if fixed else 0)
+        items = top.sequence("objects", [])
+        if has_objects and not items:
             raise top.error("objects", "the objects list is empty", "at least one object")
         templates = tuple(_read_item(reader, item, where, units) for item, where in items)
-        placed = expand(GroupTemplate(np.zeros(3), None, templates))
-        check_extent(reader.objects, placed, R.MAX_EXTENT_MM)
+        if drawn is not None:
+            fixed_placed = expand(GroupTemplate(np.zeros(3), None, templates)) if templates \
+                else None
+            under, over, parameters = drawn.draw(reader, fixed_placed, root_seed, index)
+            templates = under + templates + over
+        if templates:  # a drawn sample may hold no object at all
+            placed = expand(GroupTemplate(np.zeros(3), None, templates))
+            check_extent(reader.objects, placed, R.MAX_EXTENT_MM)
     else:
         from simbench.phantom.voxels import read_voxels
 
         voxels = read_voxels(reader, top.section("voxels"))
     return build_phantom(name, dimension, reader.materials, reader.objects, placed, voxels,
-                         source)
+                         source), parameters
 
 
 def _read_custom_materials(reader: Reader, section: Section) -> None:
