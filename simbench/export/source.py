@@ -199,7 +199,8 @@ def open_source(folder: str | Path) -> Source:
     if kind == "dataset":
         return _dataset_hook(folder)
     if kind not in KINDS:
-        raise InputError(where, f"a {kind} folder cannot be exported", valid)
+        raise InputError(where, f"this is a folder of kind '{kind}', which cannot be exported",
+                         valid)
     marker = verify_folder(folder, kind, checksums=False)  # sizes now, checksums per array read
     source = Source(folder, kind, marker)
     {"run": _read_run, "scan": _read_scan, "reconstruction": _read_reconstruction}[kind](source)

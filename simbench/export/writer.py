@@ -121,6 +121,10 @@ def choose(source, fmt: str, choice: Choice) -> list:
             picked.append(item)
         elif role == "measured" and measured and fmt in ("nxtomo", "tiff"):
             picked.append(item)
+    if not picked and source.kind == "scan" and images and not measured:
+        raise InputError(Where(str(source.folder)), "a scan folder holds projections, not "
+                         "images", "reconstruct it first (simbench reconstruct), or export its "
+                         "projections with --format nxtomo or tiff --measured")
     if not picked:
         what = "truth" if truth else "measurements" if measured else "reconstructions"
         raise InputError(Where(str(source.folder)), f"this {source.kind} folder holds no "
