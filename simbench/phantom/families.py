@@ -34,9 +34,9 @@ from simbench.phantom import ranges as R
 from simbench.phantom.compiled import Phantom
 from simbench.phantom.distributions import Draw, read_draw
 from simbench.phantom.expansion import BYTES_PER_OBJECT, MAX_OBJECTS
-from simbench.phantom.placement import (MAX_ATTEMPTS, MAX_COVERAGE_2D, MAX_COVERAGE_3D,
-                                        REGION_SHAPES_2D, REGION_SHAPES_3D, Region,
-                                        place_apart)
+from simbench.phantom import placement
+from simbench.phantom.placement import (MAX_COVERAGE_2D, MAX_COVERAGE_3D, REGION_SHAPES_2D,
+                                        REGION_SHAPES_3D, Region, place_apart)
 from simbench.spec import (Section, check_integer, check_number, load_yaml, parse_angle,
                            parse_length)
 
@@ -124,7 +124,8 @@ class PhantomFamily:
             return self._fixed, {}
         from simbench.phantom.language import read_sample
 
-        return read_sample(self._document, self.source, self._directory, root_seed, index)
+        return read_sample(self._document, self.source, self._directory, root_seed, index,
+                           warn=False)
 
 
 def _check_seed_and_index(root_seed: int, index: int) -> None:
@@ -162,8 +163,9 @@ def load_family(path_or_name: str | Path) -> PhantomFamily:
 
     path = _resolve(path_or_name)
     document = load_yaml(path, "phantom file")
-    phantom, _ = read_sample(document, str(path), path.parent)  # checks the whole file
     is_random = isinstance(document, dict) and "random" in document
+    # checks the whole file; a family's placements are drawn per sample only
+    phantom, _ = read_sample(document, str(path), path.parent, index=None if is_random else 0)
     return PhantomFamily(name=phantom.name, source=str(path), dimension=phantom.dimension,
                          is_random=is_random, _document=document, _directory=path.parent,
                          _fixed=None if is_random else phantom)
@@ -445,8 +447,14 @@ class RandomSpec:
         rng = rng_for(root_seed, STREAM, self.name, index)
         return _draw_sample(self, reader, fixed, rng, root_seed, index)
 
+    def check_names(self, reader, fixed) -> None:
+        """Check that every fixed object a set avoids exists (without drawing)."""
+        for item in self.sets:
+            if item.avoid:
+                _avoided(item, reader, fixed, self.dimension)
 
-def read_random(top: Section, reader, fixed_objects: int) -> RandomSpec:
+
+def read_random(top: Section, reader, fixed_objects: int, *, warn: bool = True) -> RandomSpec:
     """Read and check the ``random`` section of a phantom document.
 
     Parameters
@@ -457,6 +465,8 @@ def read_random(top: Section, reader, fixed_objects: int) -> RandomSpec:
         The reader of the document (custom materials already read).
     fixed_objects : int
         How many objects the fixed ``objects`` expand to.
+    warn : bool
+        Warn about sets that may fail to place at their largest draw.
 
     Raises
     ------
@@ -474,7 +484,7 @@ def read_random(top: Section, reader, fixed_objects: int) -> RandomSpec:
                  for item, where in s.sequence("objects", []))
     spec = RandomSpec(top.string("name"), reader.dimension, body, sets)
     _check_cost(spec, s, fixed_objects)
-    _check_placement(spec)
+    _check_placement(spec, warn)
     return spec
 
 
@@ -490,7 +500,7 @@ def _check_cost(spec: RandomSpec, s: Section, fixed_objects: int) -> None:
                        "fewer drawn objects")
 
 
-def _check_placement(spec: RandomSpec) -> None:
+def _check_placement(spec: RandomSpec, warn: bool) -> None:
     """Refuse sets that cannot be placed even at their smallest draw; warn about those that
     may fail at their largest.
 
@@ -514,7 +524,7 @@ def _check_placement(spec: RandomSpec) -> None:
             raise InputError(item.radius.where, f"an object at least {r_low:.6g} mm in radius "
                              f"cannot fit in its region, at most {room:.6g} mm from centre to "
                              "edge", "smaller objects or a larger region")
-        if item.count.high > 0 and r_high > _inscribed(smallest):
+        if warn and item.count.high > 0 and r_high > _inscribed(smallest):
             warn_input(item.radius.where, f"objects up to {r_high:.6g} mm in radius may not fit "
                        f"the smallest region ({_inscribed(smallest):.6g} mm from centre to edge);"
                        " such samples fail")
@@ -536,7 +546,7 @@ def _check_placement(spec: RandomSpec) -> None:
                              f"at most {100 * bound:.0f} % (random placement jams near "
                              f"{'55' if dim == 2 else '38'} %): fewer or smaller objects, a "
                              "smaller gap or a larger region")
-        if coverage_high[key] > bound:
+        if warn and coverage_high[key] > bound:
             warn_input(item.count.where, f"the largest draw covers {100 * coverage_high[key]:.0f}"
                        f" % of the region's {what}; beyond {100 * bound:.0f} % some samples may "
                        "find no place for every object")
@@ -660,7 +670,7 @@ def _draw_sample(spec: RandomSpec, reader, fixed, rng: np.random.Generator, root
         if centres is None:
             raise InputError(item.count.where, f"sample {index} of seed {root_seed}: object "
                              f"{failed + 1} of {count} ({radii[failed]:.6g} mm in radius) found "
-                             f"no place in {MAX_ATTEMPTS:,} random positions",
+                             f"no place in {placement.MAX_ATTEMPTS:,} random positions",
                              "fewer or smaller objects, a smaller gap or a larger region")
         if item.apart:
             apart_centres = np.concatenate([apart_centres, centres])

@@ -127,8 +127,12 @@ def read_document(document: Any, source: str, directory: Path | None) -> C.Phant
 
 
 def read_sample(document: Any, source: str, directory: Path | None, root_seed: int = 0,
-                index: int = 0) -> tuple[C.Phantom, dict]:
+                index: int | None = 0, *, warn: bool = True) -> tuple[C.Phantom, dict]:
     """Read a located YAML document and draw sample ``index`` of its ``random`` section.
+
+    With ``index=None`` the whole document is checked but nothing is drawn: the phantom
+    holds the fixed objects only. ``warn=False`` keeps the warnings about the random section
+    (given once when a family is loaded) from repeating for every sample.
 
     Returns
     -------
@@ -170,7 +174,7 @@ def read_sample(document: Any, source: str, directory: Path | None, root_seed: i
         if has_random:
             from simbench.phantom.families import read_random
 
-            drawn = read_random(top, reader, fixed.objects if fixed else 0)
+            drawn = read_random(top, reader, fixed.objects if fixed else 0, warn=warn)
         items = top.sequence("objects", [])
         if has_objects and not items:
             raise top.error("objects", "the objects list is empty", "at least one object")
@@ -178,8 +182,11 @@ def read_sample(document: Any, source: str, directory: Path | None, root_seed: i
         if drawn is not None:
             fixed_placed = expand(GroupTemplate(np.zeros(3), None, templates)) if templates \
                 else None
-            under, over, parameters = drawn.draw(reader, fixed_placed, root_seed, index)
-            templates = under + templates + over
+            if index is None:
+                drawn.check_names(reader, fixed_placed)
+            else:
+                under, over, parameters = drawn.draw(reader, fixed_placed, root_seed, index)
+                templates = under + templates + over
         if templates:  # a drawn sample may hold no object at all
             placed = expand(GroupTemplate(np.zeros(3), None, templates))
             check_extent(reader.objects, placed, R.MAX_EXTENT_MM)
