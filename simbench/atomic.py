@@ -112,6 +112,11 @@ def write_json(path: str | Path, data: Any) -> None:
                        encoding="utf-8")
 
 
+def as_json_values(data: Any) -> Any:
+    """``data`` as it reads back from a JSON file (arrays as lists, numpy scalars as numbers)."""
+    return json.loads(json.dumps(data, default=_jsonable))
+
+
 def save_figure(figure, path: str | Path, **savefig_kwargs) -> None:
     """Save a matplotlib figure atomically (format from the destination's suffix)."""
     path = Path(path)

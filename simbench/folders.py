@@ -14,7 +14,9 @@ The protocol, in order:
 2. **Clean up.** Holding the lock, every ``.<name>.partial-*`` and ``.<name>.old-*`` folder
    beside the final one is a leftover of a killed run; it is removed and the command says so.
    A run killed half-way through a fallback swap (step 5) had moved the old folder aside: it is
-   put back first.
+   put back first. A caller that can resume (``resume=LEDGER``, the run command) adopts the
+   newest interrupted staging folder holding that ledger instead, and keeps only what the
+   ledger's checksums prove whole (:mod:`simbench.execute.reuse`).
 3. **Stage.** The caller writes into ``.<name>.partial-<pid>-<token>`` beside the final folder
    (same file system, so the commit is a rename).
 4. **Mark.** :data:`MARKER` (``complete.json``) is written last in the staging folder: the kind
@@ -75,7 +77,7 @@ def note(message: str) -> None:
 
 @contextlib.contextmanager
 def commit_folder(final: str | Path, kind: str, *, say: Callable[[str], None] = note,
-                  option: str = "-o") -> Iterator[Path]:
+                  option: str = "-o", resume: str | None = None) -> Iterator[Path]:
     """Build a folder beside ``final`` and commit it whole when the block succeeds.
 
     Parameters
@@ -89,6 +91,11 @@ def commit_folder(final: str | Path, kind: str, *, say: Callable[[str], None] = 
         Receives one line for each thing done unasked (stale folders removed or restored).
     option : str
         The command-line option that named ``final``, for messages.
+    resume : str, optional
+        The name of a ledger file. A staging folder left by an interrupted run that holds this
+        file is adopted as the new staging folder (the newest one, if several) instead of being
+        removed: the caller keeps what its ledger proves whole and deletes the rest (see
+        :mod:`simbench.execute.reuse`).
 
     Yields
     ------
@@ -109,12 +116,18 @@ def commit_folder(final: str | Path, kind: str, *, say: Callable[[str], None] = 
     except OSError as exc:
         raise output_error(final, exc) from None
     with _locked(final, where):
-        _clean_stale(final, say)
+        adopt = _resumable(final, resume)
+        _clean_stale(final, say, spare=adopt)
         _check_replaceable(final, kind, where)
         staging = parent / f".{final.name}.partial-{os.getpid()}-{secrets.token_hex(4)}"
         try:  # made inside the try: a signal right after the mkdir still removes it
             try:
-                staging.mkdir()
+                if adopt is not None:
+                    os.rename(adopt, staging)
+                    say(f"resuming from '{adopt.name}', left by an interrupted run: its "
+                        "finished work is checked and kept, the rest removed")
+                else:
+                    staging.mkdir()
             except OSError as exc:
                 raise output_error(final, exc) from None
             yield staging
@@ -214,8 +227,18 @@ def _locked(final: Path, where: Where) -> Iterator[None]:
         os.close(fd)
 
 
-def _clean_stale(final: Path, say: Callable[[str], None]) -> None:
-    """Remove (or restore) what killed runs into ``final`` left beside it; we hold the lock."""
+def _resumable(final: Path, ledger: str | None) -> Path | None:
+    """The newest staging folder of an interrupted run into ``final`` holding ``ledger``."""
+    if ledger is None:
+        return None
+    found = [p for p in final.parent.glob(f".{final.name}.partial-*")
+             if p.is_dir() and not p.is_symlink() and (p / ledger).is_file()]
+    return max(found, key=lambda p: (p / ledger).stat().st_mtime, default=None)
+
+
+def _clean_stale(final: Path, say: Callable[[str], None], spare: Path | None = None) -> None:
+    """Remove (or restore) what killed runs into ``final`` left beside it, except ``spare``;
+    we hold the lock."""
     parent, name = final.parent, final.name
     asides = sorted(parent.glob(f".{name}.old-*"))
     if not final.exists():
@@ -226,6 +249,8 @@ def _clean_stale(final: Path, say: Callable[[str], None]) -> None:
                     "killed while replacing it")
                 break
     for stale in sorted(parent.glob(f".{name}.partial-*")) + sorted(parent.glob(f".{name}.old-*")):
+        if stale == spare:
+            continue
         size = sum(p.stat().st_size for p in _files(stale)) if stale.is_dir() else 0
         if stale.is_dir():
             shutil.rmtree(stale, ignore_errors=True)
