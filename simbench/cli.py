@@ -231,7 +231,7 @@ def cmd_run(args: argparse.Namespace) -> int:
 
     scenario = load_scenario(resolve(args.scenario, "scenarios"))
     run_scenario(scenario, Path(args.output), allow_code=args.allow_code,
-                 progress=not args.quiet and sys.stderr.isatty())
+                 progress=not args.quiet and sys.stderr.isatty(), reuse=not args.fresh)
     return 0
 
 
@@ -507,6 +507,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--allow-code", action="store_true",
                    help="allow the module paths and programs named in the scenario file to run")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--fresh", action="store_true",
+                   help="make everything again (default: take over the finished truth, "
+                        "measurements and built-in reconstructions of an interrupted or earlier "
+                        "run into DIR whose inputs are unchanged, and say so)")
     p.set_defaults(run=cmd_run)
 
     p = command("compare", "Compare runs: one table across runs, algorithms and doses of the main "

@@ -119,6 +119,14 @@ BAD = [
     ("too many realizations", SMALL.replace("realizations: 2", "realizations: 100000"),
      "realizations", "<= 1000"),
     ("bad dose", SMALL.replace("doses: [1.0, 0.5]", "doses: [1.0, -2]"), "doses[1]", ">="),
+    ("tolerance of an unknown metric", SMALL + "tolerances: {rmsee: 5 %}\n",
+     "tolerances.rmsee", "unknown metric"),
+    ("task contrast without a number", SMALL + "detectability_task: {diameter: 5 mm, "
+     "contrast: high}\n", "detectability_task.contrast", "not a contrast"),
+    ("task diameter out of range", SMALL + "detectability_task: {diameter: 5 m, "
+     "contrast: 10 HU}\n", "detectability_task.diameter", "out of range"),
+    ("task without a contrast", SMALL + "detectability_task: {diameter: 5 mm}\n",
+     "detectability_task", "contrast"),
 ]
 
 

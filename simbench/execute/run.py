@@ -23,6 +23,7 @@ bits whatever runs first.
 from __future__ import annotations
 
 import json
+import shutil
 import time
 from pathlib import Path
 
@@ -131,12 +132,38 @@ class RunPlan:
                     f"{' x '.join(map(str, self.grid.shape))} image", "fewer realizations or a "
                     "smaller grid")
         self.needs_counts = any(rec.stage == "counts" for _, rec, _ in self.algorithms)
+        self.first = (dose_label(scenario.doses[0]), 0)
         self.total_steps = len(scenario.doses) * scenario.realizations * (
             1 + len(self.algorithms))
 
 
+    def item_keys(self) -> dict:
+        """Every item of the run by ledger name, with the key of everything its bits depend
+        on (None: never reused). See :mod:`simbench.execute.reuse`."""
+        from simbench.execute.reuse import fingerprint
+
+        scenario, first = self.scenario, self.scans[self.scenario.doses[0]]
+        base = fingerprint(simbench.__version__, scenario.phantom, self.poses, first.spot,
+                           first.cells, first.spectrum, scenario.scanner.physics)
+        g = self.grid
+        truth = fingerprint("truth", base, g.shape, g.spacing_mm, g.centre_mm,
+                            scenario.reference_energy_kev)
+        keys: dict = {"truth": truth}
+        for dose in scenario.doses:
+            for r in range(scenario.realizations):
+                name = f"{dose_label(dose)}/realization-{r}"
+                measured = keys[f"measured/{name}"] = fingerprint(
+                    "measured", base, self.scans[dose].physics, scenario.seed,
+                    run_identity(scenario, dose, r), self.needs_counts)
+                for spec, rec, options in self.algorithms:
+                    keys[f"recon/{spec.name}/{name}"] = fingerprint(
+                        "recon", measured, truth, spec.name, rec.name, rec.stage, options
+                    ) if rec.origin == "built-in" else None
+        return keys
+
+
 def run_scenario(scenario, out: Path, *, allow_code: bool = False, progress: bool = True,
-                 say=print) -> dict:
+                 say=print, reuse: bool = True) -> dict:
     """Run a scenario into the folder ``out`` (committed whole).
 
     Parameters
@@ -149,22 +176,34 @@ def run_scenario(scenario, out: Path, *, allow_code: bool = False, progress: boo
         Show a progress bar on standard error.
     say : callable
         Receives the closing summary lines.
+    reuse : bool
+        Take over the finished items (truth, measurements, built-in reconstructions) of an
+        interrupted run into ``out``, or of the complete run already there, whose inputs are
+        the same (:mod:`simbench.execute.reuse`); False makes everything again.
 
     Returns
     -------
     dict
         The content of ``metrics.json``.
     """
+    from simbench.execute.reuse import LEDGER, Ledger
     from simbench.folders import commit_folder
 
     plan = RunPlan(scenario, out, allow_code=allow_code)
     _import_in_background("matplotlib.pyplot")  # the report needs it; the run has CPU to spare
     started = time.perf_counter()
     timings = dict.fromkeys(STAGES, 0.0)
-    with commit_folder(out, "run") as staging, _progress(plan, progress) as bar:
-        truth = _write_truth(staging, plan, timings)
-        results = _measure_reconstruct_score(staging, plan, truth, timings, bar)
+    with commit_folder(out, "run", resume=LEDGER if reuse else None) as staging:
+        keys = plan.item_keys() if reuse else dict.fromkeys(plan.item_keys())
+        ledger = Ledger(staging, keys, previous=out if reuse else None)
+        reused = ledger.summary()
+        if reused:
+            say(reused)
+        with _progress(plan, progress) as bar:
+            truth = _write_truth(staging, plan, timings, ledger)
+            results = _measure_reconstruct_score(staging, plan, truth, timings, bar, ledger)
         metrics = _metrics_record(plan, truth, results, timings, started)
+        metrics["run"]["reused"] = {source: names for source, names in ledger.taken.items()}
         from simbench.atomic import write_json
 
         write_json(staging / "metrics.json", metrics)
@@ -233,7 +272,7 @@ class _Truth:
     """The truth of a run: image, labels, reference energy, HU scale, field of view."""
 
 
-def _write_truth(staging: Path, plan: RunPlan, timings: dict) -> _Truth:
+def _write_truth(staging: Path, plan: RunPlan, timings: dict, ledger) -> _Truth:
     from simbench.execute.scan import TraceCache, scan_into
     from simbench.materials import get_material, mu_table
     from simbench.phantom import rasterize
@@ -250,34 +289,46 @@ def _write_truth(staging: Path, plan: RunPlan, timings: dict) -> _Truth:
     traced_bytes = 8.0 * first.n_materials * n_sub * float(np.prod(first.shape))
     keep = traced_bytes < 0.25 * memory_budget_bytes()[0]
     truth.cache = TraceCache(first, keep=keep)
-    # the reference energy: given, or the effective energy in water of the detected spectrum,
-    # which needs the first measurement's spectrum weights (measured noise-free, not written)
-    import tempfile
-
-    with tempfile.TemporaryDirectory(dir=staging) as tmp:
-        state = scan_into(Path(tmp), _one_view(first), seed=0, noise=False,
-                          identity=("reference",), reference_energy_kev=60.0,
-                          write_truth=False)
-        weights = state.metadata["signal_weights_per_bin"]
-        energies = state.metadata["energies_kev"]
-    if scenario.reference_energy_kev is not None:
-        truth.energy = float(scenario.reference_energy_kev)
-    else:
-        truth.energy = detected_effective_energy_kev(energies, np.sum(weights, axis=0))
-    materials = [get_material("water"), get_material("air")]
-    truth.mu_water, truth.mu_air = (float(v) for v in mu_table(materials, [truth.energy])[:, 0])
-    truth.image = rasterize(scenario.phantom, plan.grid, truth.energy)
-    truth.labels = label_map(scenario.phantom, plan.grid).astype(np.int32)
     from simbench.geometry import field_of_view_radius_mm
 
     radius = field_of_view_radius_mm(plan.poses)
     x, y = np.meshgrid(plan.grid.axis_mm("x"), plan.grid.axis_mm("y"))
     fov = np.hypot(x, y) <= (radius if np.isfinite(radius) and radius > 0 else np.inf)
     truth.fov = np.broadcast_to(fov, plan.grid.image_shape) if plan.grid.dimension == 3 else fov
-    (staging / "truth").mkdir()
-    np.save(staging / "truth" / "image.npy", truth.image.astype(np.float32))
-    np.save(staging / "truth" / "labels.npy", truth.labels)
-    truth.weights, truth.energies = weights, energies
+    folder = staging / "truth"
+    known = ledger.get("truth")
+    truth.reused = known is not None
+    if truth.reused:
+        truth.energy, truth.mu_water, truth.mu_air = (known[k] for k in
+                                                      ("energy_kev", "mu_water", "mu_air"))
+        truth.image = np.load(folder / "image.npy")
+        truth.labels = np.load(folder / "labels.npy")
+        return truth
+    # the first measurement writes the exact line integrals of a truth made afresh
+    ledger.drop("measured/{}/realization-{}".format(*plan.first))
+    # the reference energy: given, or the effective energy in water of the detected spectrum,
+    # which needs the first measurement's spectrum weights (measured noise-free, not written)
+    import tempfile
+
+    if scenario.reference_energy_kev is not None:
+        truth.energy = float(scenario.reference_energy_kev)
+    else:
+        with tempfile.TemporaryDirectory(dir=staging) as tmp:
+            state = scan_into(Path(tmp), _one_view(first), seed=0, noise=False,
+                              identity=("reference",), reference_energy_kev=60.0,
+                              write_truth=False)
+            weights = state.metadata["signal_weights_per_bin"]
+            energies = state.metadata["energies_kev"]
+        truth.energy = detected_effective_energy_kev(energies, np.sum(weights, axis=0))
+    materials = [get_material("water"), get_material("air")]
+    truth.mu_water, truth.mu_air = (float(v) for v in mu_table(materials, [truth.energy])[:, 0])
+    # scored as written (float32): the metrics can be recomputed from the folder alone, and a
+    # rerun that takes the truth over scores the same bits
+    truth.image = rasterize(scenario.phantom, plan.grid, truth.energy).astype(np.float32)
+    truth.labels = label_map(scenario.phantom, plan.grid).astype(np.int32)
+    folder.mkdir(exist_ok=True)
+    np.save(folder / "image.npy", truth.image)
+    np.save(folder / "labels.npy", truth.labels)
     return truth
 
 
@@ -293,7 +344,8 @@ def _one_view(plan):
 
 
 def _measure_reconstruct_score(staging: Path, plan: RunPlan, truth: _Truth, timings: dict,
-                               bar) -> dict:
+                               bar, ledger) -> dict:
+    from simbench.atomic import as_json_values
     from simbench.execute.reconstruct import timed_reconstruction
     from simbench.execute.scan import TraceCache, scan_into
     from simbench.recon.contract import Acquisition
@@ -301,10 +353,12 @@ def _measure_reconstruct_score(staging: Path, plan: RunPlan, truth: _Truth, timi
 
     scenario = plan.scenario
     context = ScoringContext(truth.image, truth.labels, plan.grid, scenario.phantom,
-                             scenario.rois, truth.mu_water, truth.mu_air, truth.fov)
+                             scenario.rois, truth.mu_water, truth.mu_air, truth.fov,
+                             scenario.detectability_task)
     results: dict = {spec.name: {} for spec, _, _ in plan.algorithms}
     seeds: dict = {}
-    exact = None
+    truth_values = {"energy_kev": truth.energy, "mu_water": truth.mu_water,
+                    "mu_air": truth.mu_air}
     for dose in scenario.doses:
         scan = plan.scans[dose]
         cache = truth.cache
@@ -317,47 +371,66 @@ def _measure_reconstruct_score(staging: Path, plan: RunPlan, truth: _Truth, timi
         peaks = {spec.name: [] for spec, _, _ in plan.algorithms}
         reproj = {spec.name: [] for spec, _, _ in plan.algorithms}
         for r in range(scenario.realizations):
+            label = f"{dose_label(dose)}/realization-{r}"
             folder = staging / "measured" / dose_label(dose) / f"realization-{r}"
-            folder.mkdir(parents=True)
             identity = run_identity(scenario, dose, r)
-            t0 = time.perf_counter()
-            write_truth = exact is None
-            state = scan_into(folder, scan, seed=scenario.seed, noise=True, identity=identity,
-                              reference_energy_kev=truth.energy, write_truth=write_truth,
-                              lengths=cache)
-            timings["measure"] += time.perf_counter() - t0 - state.timings["trace"]
-            timings["trace"] += state.timings["trace"]
-            if write_truth:
-                (folder / "truth" / "line_integrals.npy").rename(
-                    staging / "truth" / "line_integrals.npy")
-                (folder / "truth" / "path_lengths.npy").unlink()
-                (folder / "truth").rmdir()
-                exact = np.load(staging / "truth" / "line_integrals.npy", mmap_mode="r")
+            known = ledger.get(f"measured/{label}")
+            if known is None:
+                folder.mkdir(parents=True, exist_ok=True)
+                t0 = time.perf_counter()
+                write_truth = not truth.reused
+                state = scan_into(folder, scan, seed=scenario.seed, noise=True,
+                                  identity=identity, reference_energy_kev=truth.energy,
+                                  write_truth=write_truth, lengths=cache)
+                timings["measure"] += time.perf_counter() - t0 - state.timings["trace"]
+                timings["trace"] += state.timings["trace"]
+                if write_truth:
+                    (folder / "truth" / "line_integrals.npy").rename(
+                        staging / "truth" / "line_integrals.npy")
+                    shutil.rmtree(folder / "truth")
+                    ledger.record("truth", [staging / "truth" / f"{name}.npy" for name in
+                                            ("image", "labels", "line_integrals")],
+                                  truth_values)
+                    truth.reused = True  # made now: later measurements leave it alone
+                if not plan.needs_counts:
+                    for name in ("counts", "flat", "dark"):
+                        (folder / "measured" / f"{name}.npy").unlink()
+                metadata = as_json_values(state.metadata)
+                ledger.record(f"measured/{label}", sorted(folder.rglob("*.npy")),
+                              {"metadata": metadata})
+            else:
+                metadata = known["metadata"]
             seeds.setdefault(dose_label(dose), []).append(
                 {"realization": r, "root_seed": scenario.seed, "identity": list(identity)})
             arrays = {name: np.load(folder / "measured" / f"{name}.npy", mmap_mode="r")
+                      if (folder / "measured" / f"{name}.npy").exists() else None
                       for name in ("projections", "counts", "flat", "dark")}
-            if not plan.needs_counts:
-                for name in ("counts", "flat", "dark"):
-                    (folder / "measured" / f"{name}.npy").unlink()
-            record = {"measurement": state.metadata, "truth": {
-                "reference_energy_kev": truth.energy}, "physics": state.metadata.get("physics")}
+            record = {"measurement": metadata, "truth": {
+                "reference_energy_kev": truth.energy}, "physics": metadata.get("physics")}
             acquisition = Acquisition(plan.poses, metadata=record, source=str(folder),
                                       **arrays)
             bar.update(1)
             for spec, reconstructor, options in plan.algorithms:
                 bar.set_postfix_str(f"{spec.name}, {dose_label(dose)}, realization {r}")
-                image, seconds, peak = timed_reconstruction(reconstructor, acquisition,
-                                                            plan.grid, options)
-                timings["reconstruct"] += seconds
                 target = staging / "recon" / spec.name / dose_label(dose)
-                target.mkdir(parents=True, exist_ok=True)
-                np.save(target / f"realization-{r}.npy", image)
+                path = target / f"realization-{r}.npy"
+                name = f"recon/{spec.name}/{label}"
+                known = ledger.get(name)
+                if known is None:
+                    image, seconds, peak = timed_reconstruction(reconstructor, acquisition,
+                                                                plan.grid, options)
+                    timings["reconstruct"] += seconds
+                    target.mkdir(parents=True, exist_ok=True)
+                    np.save(path, image)
+                    ledger.record(name, [path], {"seconds": seconds, "peak_bytes": peak})
+                else:
+                    image = np.load(path)
+                    seconds, peak = known["seconds"], known["peak_bytes"]
                 images[spec.name].append(image)
                 walls[spec.name].append(seconds)
                 peaks[spec.name].append(peak)
                 if "projection_error" in scenario.metrics:
-                    reproj[spec.name].append(_reprojection_rmse(plan, image, exact))
+                    reproj[spec.name].append(_reprojection_rmse(plan, image, staging))
                 bar.update(1)
         t0 = time.perf_counter()
         for spec, _, _ in plan.algorithms:
@@ -370,13 +443,14 @@ def _measure_reconstruct_score(staging: Path, plan: RunPlan, truth: _Truth, timi
     return results
 
 
-def _reprojection_rmse(plan: RunPlan, image: np.ndarray, exact) -> float:
+def _reprojection_rmse(plan: RunPlan, image: np.ndarray, staging: Path) -> float:
     from simbench.recon.projectors import projector
     from simbench.score.streaks import projection_rmse
 
     if not hasattr(plan, "_projector"):
         plan._projector = projector(plan.poses, plan.grid)
-    return float(projection_rmse(plan._projector.forward(image), np.asarray(exact)))
+        plan._exact = np.load(staging / "truth" / "line_integrals.npy", mmap_mode="r")
+    return float(projection_rmse(plan._projector.forward(image), np.asarray(plan._exact)))
 
 
 def _metrics_record(plan: RunPlan, truth: _Truth, results: dict, timings: dict,
@@ -447,6 +521,10 @@ def _write_resolved(staging: Path, plan: RunPlan, truth: _Truth) -> None:
                        for spec, rec, options in plan.algorithms],
         "metrics": list(scenario.metrics),
         "rois": scenario.rois,
+        "detectability_task": "the edge insert's disc and measured contrast"
+        if scenario.detectability_task is None else
+        {"diameter": f"{scenario.detectability_task[0]!r} mm",
+         "contrast": f"{scenario.detectability_task[1]!r} HU"},
         "tolerances": {k: (f"{v * 100:g} %" if rel else v)
                        for k, (v, rel) in scenario.tolerances.items()},
         "versions": {"simbench": simbench.__version__, **versions},

@@ -32,9 +32,11 @@ standard deviations ``s_m, s_b`` over ``n_m, n_b`` realizations and tolerance ``
 This is the one-sided Welch t-test of "worse by more than the tolerance" at the 2.5 % level,
 stated as an interval: unchanged code false-alarms on one metric in at most 2.5 % of runs
 when the tolerance is zero, and far less once the tolerance exceeds the standard error
-(docs/ci.md has the numbers). A metric measured once per run (pooled over the realizations,
-such as the noise of the noise power spectrum or the TTF of the mean image) has no interval
-and is compared as a number: its tolerance must exceed its run-to-run spread.
+(docs/ci.md has the numbers). A metric pooled over the realizations (the noise of the noise
+power spectrum, the TTF of the mean image, d') carries a jackknife standard error over the
+realizations (``std / sqrt(n)`` as for a mean) and is compared the same way; with fewer than
+3 realizations it has none and is compared as a number, so its tolerance must exceed its
+run-to-run spread.
 
 References
 ----------

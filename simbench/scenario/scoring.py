@@ -42,6 +42,7 @@ class ScoringContext:
     mu_water: float
     mu_air: float
     fov: np.ndarray              # bool, pixels seen from every view
+    task: tuple | None = None    # d' task: (diameter mm, contrast HU); None: the edge insert
 
     def roi_label(self, name: str) -> int:
         return list(self.phantom.roi_names).index(name) + 1
@@ -80,6 +81,75 @@ def _plane(image: np.ndarray, grid: ImageGrid, k: int) -> tuple[np.ndarray, Imag
     plane = ImageGrid((1,) + tuple(grid.shape[1:]), grid.spacing_mm,
                       (grid.centre_mm[0], grid.centre_mm[1], float(grid.axis_mm("z")[k])), 2)
     return image[k], plane
+
+
+def _jackknife_estimate(value: float, others: list, metric: str) -> dict:
+    from simbench.score.statistics import jackknife_interval
+
+    e = jackknife_interval(value, others)
+    better, unit = METRIC_INFO.get(metric, ("lower", ""))
+    return {"mean": e.mean, "low": e.low, "high": e.high, "std": e.std, "n": e.n,
+            "level": e.level, "interval": "jackknife", "values": [float(value)],
+            "leave_one_out": [float(v) for v in others], "unit": unit, "better": better}
+
+
+def _pooled(stack: list, c: ScoringContext, metrics: tuple) -> tuple[dict, dict]:
+    """The metrics measured once from all realizations together: the TTF of the mean image,
+    the noise of the noise power spectrum of the deviations from it, and d' from both.
+
+    Returns
+    -------
+    (dict, dict)
+        Metric name -> value (absent when it cannot be measured), and the curves.
+    """
+    values: dict = {}
+    curves: dict = {}
+    mean_image = np.mean(stack, axis=0)
+    ttf = None
+    if ("ttf" in metrics or "detectability" in metrics) and c.rois.get("edge"):
+        from simbench.score.resolution import ttf_circular_insert
+
+        centre, radius, k = c.roi_disc(c.rois["edge"])
+        plane, plane_grid = _plane(mean_image, c.grid, k)
+        ttf = ttf_circular_insert(plane, plane_grid, centre, radius)
+        values["ttf_f50_per_mm"] = ttf.f50_per_mm
+        values["ttf_f10_per_mm"] = ttf.f10_per_mm
+        curves["ttf"] = {"frequency_per_mm": ttf.frequencies_per_mm.tolist(),
+                         "value": ttf.values.tolist(), "insert": c.rois["edge"]}
+    nps = None
+    if ("nps" in metrics or "detectability" in metrics) and c.rois.get("noise") \
+            and len(stack) >= 2:
+        from simbench.score.noise import noise_power_spectrum, square_roi
+
+        patches = []
+        for name in c.rois["noise"]:
+            centre, radius, k = c.roi_disc(name)
+            size = int(2 * radius / np.sqrt(2) / c.grid.spacing_mm[0])
+            if size < 8:
+                continue
+            for image in stack:
+                plane, plane_grid = _plane(image - mean_image, c.grid, k)
+                rows, cols = square_roi(plane_grid, centre, size)
+                patches.append(1000.0 * plane[rows, cols] / (c.mu_water - c.mu_air))
+        if patches:
+            nps = noise_power_spectrum(np.stack(patches), c.grid.spacing_mm[:2])
+            # mean-subtracted realizations: each deviation carries (n - 1)/n of the variance
+            scale = len(stack) / (len(stack) - 1)
+            values["noise_std_hu"] = float(np.sqrt(nps.variance * scale))
+            curves["nps"] = {"frequency_per_mm": nps.radial_frequencies_per_mm.tolist(),
+                             "value": (nps.radial_nps * scale).tolist(), "unit": "HU^2 mm^2"}
+    if "detectability" in metrics and ttf is not None and nps is not None:
+        from simbench.score.detectability import DiscTask, npw_detectability
+
+        if c.task is not None:
+            task = DiscTask(diameter_mm=c.task[0], contrast=c.task[1])
+        else:
+            centre, radius, k = c.roi_disc(c.rois["edge"])
+            contrast = abs(ttf.contrast) if ttf.contrast is not None else 1.0
+            task = DiscTask(diameter_mm=2 * radius, contrast=float(
+                1000.0 * contrast / (c.mu_water - c.mu_air)))
+        values["detectability"] = npw_detectability(task, nps, ttf)
+    return {k: v for k, v in values.items() if v is not None and np.isfinite(v)}, curves
 
 
 def score_realizations(images: list, context: ScoringContext, metrics: tuple, *,
@@ -147,49 +217,16 @@ def score_realizations(images: list, context: ScoringContext, metrics: tuple, *,
                                                      c.mu_air, c.labels) for image in stack])
         add("cupping_percent", [roi_metrics.cupping(image, centre, periphery, c.labels)
                                 for image in stack])
-    mean_image = np.mean(stack, axis=0)
-    ttf = None
-    if ("ttf" in metrics or "detectability" in metrics) and c.rois.get("edge"):
-        from simbench.score.resolution import ttf_circular_insert
-
-        centre, radius, k = c.roi_disc(c.rois["edge"])
-        plane, plane_grid = _plane(mean_image, c.grid, k)
-        ttf = ttf_circular_insert(plane, plane_grid, centre, radius)
-        add("ttf_f50_per_mm", [ttf.f50_per_mm])
-        add("ttf_f10_per_mm", [ttf.f10_per_mm])
-        out["curves"]["ttf"] = {"frequency_per_mm": ttf.frequencies_per_mm.tolist(),
-                                "value": ttf.values.tolist(), "insert": c.rois["edge"]}
-    nps = None
-    if ("nps" in metrics or "detectability" in metrics) and c.rois.get("noise") \
-            and len(stack) >= 2:
-        from simbench.score.noise import noise_power_spectrum, square_roi
-
-        patches = []
-        for name in c.rois["noise"]:
-            centre, radius, k = c.roi_disc(name)
-            size = int(2 * radius / np.sqrt(2) / c.grid.spacing_mm[0])
-            if size < 8:
-                continue
-            for image in stack:
-                plane, plane_grid = _plane(image - mean_image, c.grid, k)
-                rows, cols = square_roi(plane_grid, centre, size)
-                patches.append(1000.0 * plane[rows, cols] / (c.mu_water - c.mu_air))
-        if patches:
-            nps = noise_power_spectrum(np.stack(patches), c.grid.spacing_mm[:2])
-            # mean-subtracted realizations: each deviation carries (n - 1)/n of the variance
-            scale = len(stack) / (len(stack) - 1)
-            add("noise_std_hu", [float(np.sqrt(nps.variance * scale))])
-            out["curves"]["nps"] = {"frequency_per_mm": nps.radial_frequencies_per_mm.tolist(),
-                                    "value": (nps.radial_nps * scale).tolist(),
-                                    "unit": "HU^2 mm^2"}
-    if "detectability" in metrics and ttf is not None and nps is not None:
-        from simbench.score.detectability import DiscTask, npw_detectability
-
-        centre, radius, k = c.roi_disc(c.rois["edge"])
-        contrast = abs(ttf.contrast) if ttf.contrast is not None else 1.0
-        task = DiscTask(diameter_mm=2 * radius, contrast=float(
-            1000.0 * contrast / (c.mu_water - c.mu_air)))
-        add("detectability", [npw_detectability(task, nps, ttf)])
+    pooled, curves = _pooled(stack, c, metrics)
+    out["curves"].update(curves)
+    leave_one_out = [_pooled(stack[:i] + stack[i + 1:], c, metrics)[0]
+                     for i in range(len(stack))] if len(stack) >= 3 and pooled else []
+    for name, value in pooled.items():
+        others = [d.get(name) for d in leave_one_out]
+        if others and all(v is not None and np.isfinite(v) for v in others):
+            out["metrics"][name] = _jackknife_estimate(value, others, name)
+        else:
+            add(name, [value])
     if "streaks" in metrics and c.rois.get("edge"):
         centre, radius, k = c.roi_disc(c.rois["edge"])
         from simbench.score.rois import annulus_mask

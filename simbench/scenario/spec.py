@@ -35,6 +35,9 @@ Keys (docs/scenarios.md has the full description)::
       background: water body              # the ROI that CNR is measured against
       edge: bone insert                   # the insert whose edge gives the TTF
       noise: [centre]                     # ROIs whose noise power spectrum is measured
+    detectability_task:                   # optional; default: the edge insert's own disc
+      diameter: 5 mm                      # the disc to detect (0.1 to 500 mm)
+      contrast: 10 HU                     # its contrast against the background (0.1 to 1e5 HU)
     tolerances:                           # optional, for 'simbench check'
       rmse: 5 %                           # relative, or an absolute value in the metric's unit
 """
@@ -50,7 +53,12 @@ from simbench.errors import InputError, Where
 from simbench.spec import Section, load_yaml
 
 TOP_KEYS = ("name", "description", "phantom", "scanner", "grid", "reference_energy", "seed",
-            "realizations", "doses", "algorithms", "metrics", "rois", "tolerances")
+            "realizations", "doses", "algorithms", "metrics", "rois", "detectability_task",
+            "tolerances")
+TASK_KEYS = ("diameter", "contrast")
+#: the range of a detectability task's disc diameter (mm) and contrast (HU)
+TASK_DIAMETER_MM = (0.1, 500.0)
+TASK_CONTRAST_HU = (0.1, 1e5)
 ALGORITHM_KEYS = ("name", "use", "options", "command", "stage", "time_limit")
 GRID_KEYS = ("size", "voxel_size", "centre")
 ROI_KEYS = ("background", "edge", "noise", "centre", "periphery")
@@ -103,6 +111,9 @@ class Scenario:
     tolerances : dict
         metric name -> (value, relative?)
     source : str
+    detectability_task : tuple or None
+        (disc diameter in mm, contrast in HU) of the d' task; None: the edge insert's disc
+        and its measured contrast.
     """
 
     name: str
@@ -122,6 +133,7 @@ class Scenario:
     tolerances: dict
     source: str
     wheres: dict = field(default_factory=dict, compare=False, repr=False)
+    detectability_task: tuple | None = None
 
 
 def load_scenario(path: str | Path) -> Scenario:
@@ -158,11 +170,12 @@ def read_scenario(document: Any, source: str, directory: Path) -> Scenario:
     metrics = _metrics(top)
     rois = _rois(top, phantom)
     tolerances = _tolerances(top, metrics)
+    task = _task(top)
     grid = _grid(top, scanner)
     wheres = {key: top.at(key) for key in TOP_KEYS}
     return Scenario(name, description, phantom, scanner, phantom_ref, scanner_ref, grid,
                     reference, seed, realizations, doses, algorithms, metrics, rois, tolerances,
-                    source, wheres)
+                    source, wheres, task)
 
 
 # ------------------------------------------------------------------------------------------
@@ -336,12 +349,39 @@ def _rois(top: Section, phantom) -> dict:
     return out
 
 
+def _task(top: Section) -> tuple | None:
+    if not top.has("detectability_task"):
+        return None
+    s = top.section("detectability_task")
+    s.check_keys(TASK_KEYS, required=TASK_KEYS)
+    diameter = s.length("diameter", positive=True)
+    low, high = TASK_DIAMETER_MM
+    if not low <= diameter <= high:
+        raise s.error("diameter", f"{diameter:g} mm is out of range", f"{low:g} to {high:g} mm")
+    value = s.raw("contrast")
+    text = str(value).strip()
+    number = text[:-2].strip() if text.upper().endswith("HU") else text
+    try:
+        contrast = abs(float(number))
+    except ValueError:
+        contrast = math.nan
+    low, high = TASK_CONTRAST_HU
+    if not low <= contrast <= high:  # NaN fails too
+        raise s.error("contrast", f"'{value}' is not a contrast in HU",
+                      f"{low:g} to {high:g} HU (its sign does not matter), e.g. '10 HU'")
+    return diameter, contrast
+
+
 def _tolerances(top: Section, metrics: tuple) -> dict:
     out: dict = {}
     if not top.has("tolerances"):
         return out
+    from simbench.scenario.scoring import METRIC_INFO
+
     s = top.section("tolerances")
     for key in s.keys():
+        if key not in METRIC_INFO:
+            raise s.error(key, f"unknown metric {key!r}", "one of " + ", ".join(METRIC_INFO))
         value = s.raw(key)
         text = str(value).strip()
         relative = text.endswith("%")
