@@ -328,8 +328,6 @@ def _read_body(reader, s: Section) -> BodySpec:
 def _flags(reader, s: Section):
     from simbench.phantom.language import _read_material_and_flags
 
-    if s.has("mu"):
-        raise s.error("mu", "a drawn body takes a material name", "material: water")
     return _read_material_and_flags(reader, s)
 
 
