@@ -7,12 +7,12 @@ EXAMPLE = "simbench export quickstart-run --format dicom --algorithm fbp-hann --
 
 def add_commands(command) -> None:
     """Add this module's commands; ``command(name, help, example)`` returns a sub-parser."""
-    p = command("export", "Export a run, scan or reconstruction folder to open formats: "
+    p = command("export", "Export a run, scan, reconstruction or dataset folder to open formats: "
                           "projections as NeXus NXtomo (HDF5), images as TIFF stacks or DICOM CT "
                           "series in HU. Without --truth, --measured or --algorithm, everything "
                           "the format holds.", EXAMPLE)
     p.add_argument("source", metavar="FOLDER",
-                   help="a run, scan or reconstruction folder written by simbench")
+                   help="a run, scan, reconstruction or dataset folder written by simbench")
     p.add_argument("--format", required=True, metavar="FORMAT",
                    help="nxtomo (projections), tiff (images and projections) or dicom (images)")
     p.add_argument("-o", "--output", required=True, metavar="DIR", help="export folder")
@@ -30,6 +30,9 @@ def add_commands(command) -> None:
     p.add_argument("--realization", action="append", metavar="N", default=[],
                    help="only this noise realization of a run, from 0 (repeat for more; "
                         "default every one)")
+    p.add_argument("--sample", action="append", metavar="N", default=[],
+                   help="only this sample of a dataset, from 0 (repeat for more; default every "
+                        "one)")
     p.add_argument("--data", default=None, metavar="KIND",
                    help="measured data to write: counts (raw counts with flat and dark frames) "
                         "or line-integrals (default: counts where kept for nxtomo, "
@@ -55,6 +58,7 @@ def cmd_export(args) -> int:
                              "a step above 0 and at most 1000 HU, e.g. 1 or 0.25") from None
     choice = Choice(truth=args.truth, measured=args.measured,
                     algorithms=tuple(args.algorithm), doses=tuple(args.dose),
-                    realizations=tuple(args.realization), data=args.data, hu_step=hu_step)
+                    realizations=tuple(args.realization),
+                    samples=tuple(args.sample), data=args.data, hu_step=hu_step)
     export(args.source, args.format.strip().lower(), args.output, choice)
     return 0

@@ -348,6 +348,33 @@ def test_a_scan_exports_counts_with_flat_and_dark_and_no_source_distance(tmp_pat
     assert not (tmp_path / "d").exists()
 
 
+def test_a_dataset_sample_exports_bit_identical_and_in_hu(tmp_path):
+    from simbench.data import shipped_files
+    from simbench.datasets import open_dataset
+
+    spec = shipped_files("datasets")["inserts-2d"].read_text(encoding="utf-8")
+    (tmp_path / "two.yaml").write_text(spec.replace("samples: 8", "samples: 2"),
+                                       encoding="utf-8")
+    dataset = tmp_path / "dataset"
+    assert main(["generate", str(tmp_path / "two.yaml"), "-o", str(dataset), "--quiet"]) == 0
+    _export(dataset, "tiff", tmp_path / "tif", "--truth", "--sample", "1")
+    _export(dataset, "dicom", tmp_path / "dcm", "--sample", "1")
+    _export(dataset, "nxtomo", tmp_path / "nx", "--measured", "--sample", "1")
+    with open_dataset(dataset) as ds:
+        sample, info = ds[1], ds.sample_info(1)
+    image = tifffile.imread(tmp_path / "tif" / "sample-00001" / "truth" / "image.tif")
+    assert image.tobytes() == sample["truth_image"].tobytes()
+    assert not (tmp_path / "tif" / "sample-00000").exists()
+    ds_slice = pydicom.dcmread(tmp_path / "dcm" / "sample-00001" / "truth" / "image" /
+                               "slice-0001.dcm")
+    mu_w, mu_a = (info["hu_scale"][k] for k in ("mu_water_per_mm", "mu_air_per_mm"))
+    hu = 1000.0 * (sample["truth_image"].astype(np.float64) - mu_w) / (mu_w - mu_a)  # HU
+    assert np.abs(_hu(ds_slice) - hu).max() <= float(ds_slice.RescaleSlope) / 2 + 1e-9
+    assert ds_slice.PatientID.endswith("-1")  # one synthetic patient per sample
+    with h5py.File(tmp_path / "nx" / "sample-00001" / "measured" / "dose-1.nxs", "r") as f:
+        assert np.array_equal(f["entry/data/data"][:, 0], sample["projections/dose-1"])
+
+
 def _damaged(run, tmp_path):
     copy = tmp_path / "damaged"
     shutil.copytree(run, copy)

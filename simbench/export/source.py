@@ -1,10 +1,12 @@
-"""What can be exported from a folder: run, scan and reconstruction folders, read and checked.
+"""What can be exported from a folder: run, scan, reconstruction and dataset folders.
 
-:func:`open_source` reads a folder written by ``simbench run``, ``simbench scan`` or
-``simbench reconstruct``, refuses it in one line unless it is complete (its marker is valid and
-every file present at its recorded size, :func:`simbench.folders.verify_folder`), and lists
+:func:`open_source` reads a folder written by ``simbench run``, ``simbench scan``,
+``simbench reconstruct`` or ``simbench generate``, refuses it in one line unless it is complete
+(its marker is valid and every file present at its recorded size,
+:func:`simbench.folders.verify_folder`; a dataset through :mod:`simbench.datasets`), and lists
 the arrays it holds as :class:`Item` s. Every array is read through :meth:`Source.load`, which
-compares its SHA-256 with the folder's marker first, so a damaged array is never exported.
+compares its SHA-256 with the folder's marker (a dataset's manifest) first, so a damaged array
+is never exported.
 """
 
 from __future__ import annotations
@@ -18,8 +20,10 @@ import numpy as np
 
 from simbench.errors import InputError, Where
 
-#: the folder kinds that can be exported
+#: the folder kinds that can be exported (besides datasets, which have their own record)
 KINDS = ("run", "scan", "reconstruction")
+#: how a dataset array is named in :attr:`Item.files`: ``dataset:<sample>:<key>``
+DATASET_PREFIX = "dataset:"
 
 
 @dataclass(frozen=True)
@@ -39,6 +43,8 @@ class Item:
     algorithm, dose : str
         The algorithm's name and the dose label (``dose-1``), or "".
     realization : int or None
+    sample : int or None
+        The sample's index in a dataset.
     """
 
     role: str
@@ -47,11 +53,13 @@ class Item:
     algorithm: str = ""
     dose: str = ""
     realization: int | None = None
+    sample: int | None = None
 
     @property
     def title(self) -> str:
         """A short human description, e.g. ``fbp, dose-1, realization 0``."""
-        parts = [self.algorithm or self.role]
+        parts = [] if self.sample is None else [f"sample {self.sample}"]
+        parts.append(self.algorithm or self.role)
         if self.dose:
             parts.append(self.dose)
         if self.realization is not None:
@@ -85,6 +93,10 @@ class Source:
         ``scenario``, ``phantom``, ``scanner`` (may be empty).
     counts_kept : bool
         The measured folders hold raw counts with flat and dark frames.
+    samples : int
+        Number of samples (datasets; 0 otherwise).
+    dataset : Dataset or None
+        The open dataset (:func:`simbench.datasets.open_dataset`).
     """
 
     folder: Path
@@ -101,6 +113,8 @@ class Source:
     names: dict = field(default_factory=dict)
     counts_kept: bool = False
     frames_averaged: dict = field(default_factory=dict)
+    samples: int = 0
+    dataset: object = None
     _poses: object = None
     _geometry_reader: object = None
 
@@ -108,6 +122,10 @@ class Source:
     def digest(self) -> str:
         """SHA-256 of the folder's file list with every file's SHA-256: the folder's identity
         (the same data gives the same digest, whenever and wherever it was written)."""
+        if self.dataset is not None:  # the manifest holds every array's SHA-256
+            from simbench.execute.dataset import MANIFEST
+
+            return hashlib.sha256((self.folder / MANIFEST).read_bytes()).hexdigest()
         text = json.dumps(self.marker.get("files", {}), sort_keys=True)
         return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
@@ -117,8 +135,19 @@ class Source:
         return str(self.marker.get("written") or "")
 
     def sha256(self, rel: str) -> str:
-        """The SHA-256 of a file as the marker records it."""
+        """The SHA-256 of a file (of a dataset array) as the marker (manifest) records it."""
+        if rel.startswith(DATASET_PREFIX):
+            index, key = _dataset_ref(rel)
+            return str(self.dataset.sample_info(index)["arrays"][key]["sha256"])
         return str(self.marker["files"][rel]["sha256"])
+
+    def size(self, rel: str) -> int:
+        """Bytes of a file (of a dataset array, uncompressed)."""
+        if rel.startswith(DATASET_PREFIX):
+            index, key = _dataset_ref(rel)
+            entry = self.dataset.sample_info(index)["arrays"][key]
+            return int(np.dtype(entry["dtype"]).itemsize * np.prod(entry["shape"]))
+        return int(self.marker["files"][rel]["bytes"])
 
     def poses(self):
         """The scan geometry (:class:`~simbench.geometry.poses.Poses`), read on first use."""
@@ -137,6 +166,11 @@ class Source:
         """
         from simbench.folders import file_sha256
 
+        if rel.startswith(DATASET_PREFIX):
+            index, key = _dataset_ref(rel)
+            array = self.dataset.get(index, [key])[key]  # compared with the manifest
+            _check_finite(array, Where(str(self.folder), field=f"sample {index}: {key}"))
+            return array
         path = self.folder / rel
         if rel not in self.marker.get("files", {}):
             raise InputError(Where(str(path)), "not listed in the folder's complete.json",
@@ -149,14 +183,26 @@ class Source:
         except (OSError, ValueError) as exc:
             raise InputError(Where(str(path)), f"not a readable array: {exc}".splitlines()[0],
                              f"a complete {self.kind} folder; write it again") from None
-        if array.dtype.kind == "f":
-            step = max(1, (16 * 2**20) // max(1, array[:1].nbytes))
-            for i in range(0, max(1, array.shape[0] if array.ndim else 1), step):
-                block = array[i:i + step] if array.ndim else array
-                if not np.isfinite(block).all():
-                    raise InputError(Where(str(path)), "holds NaN or inf values",
-                                     "finite values; write the folder again")
+        _check_finite(array, Where(str(path)))
         return array
+
+
+def _check_finite(array: np.ndarray, where: Where) -> None:
+    """Refuse an array holding NaN or inf (read in blocks: it may be a memory map)."""
+    if array.dtype.kind != "f":
+        return
+    if array.ndim == 0:
+        array = array.reshape(1)
+    step = max(1, (16 * 2**20) // max(1, array[:1].nbytes))
+    for i in range(0, array.shape[0], step):
+        if not np.isfinite(array[i:i + step]).all():
+            raise InputError(where, "holds NaN or inf values", "finite values; write the "
+                             "folder again")
+
+
+def _dataset_ref(rel: str) -> tuple[int, str]:
+    index, key = rel[len(DATASET_PREFIX):].split(":", 1)
+    return int(index), key
 
 
 # ------------------------------------------------------------------------------------------
@@ -185,10 +231,14 @@ def open_source(folder: str | Path) -> Source:
 
     folder = Path(folder)
     where = Where(str(folder))
-    valid = "a run, scan or reconstruction folder written by simbench"
+    valid = "a run, scan, reconstruction or dataset folder written by simbench"
     if not folder.is_dir():
         raise InputError(where, "no such folder" if not folder.exists() else "not a folder",
                          valid)
+    from simbench.execute.dataset import MANIFEST
+
+    if (folder / MANIFEST).exists():
+        return _read_dataset(folder)
     try:
         kind = json.loads((folder / MARKER).read_text(encoding="utf-8")).get("kind")
     except FileNotFoundError:
@@ -196,8 +246,6 @@ def open_source(folder: str | Path) -> Source:
                          "interrupted run, or a folder simbench did not write)", valid) from None
     except (OSError, ValueError, AttributeError):
         raise InputError(Where(str(folder / MARKER)), "not a simbench marker", valid) from None
-    if kind == "dataset":
-        return _dataset_hook(folder)
     if kind not in KINDS:
         raise InputError(where, f"this is a folder of kind '{kind}', which cannot be exported",
                          valid)
@@ -207,12 +255,57 @@ def open_source(folder: str | Path) -> Source:
     return source
 
 
-def _dataset_hook(folder: Path) -> Source:
-    """Datasets (``simbench generate``) export through :mod:`simbench.datasets` once it exists."""
-    raise InputError(Where(str(folder)), "exporting a dataset is not available in this version "
-                     "(it needs the dataset loader simbench.datasets)",
-                     "a run, scan or reconstruction folder; or read the dataset with "
-                     "simbench.datasets and call the writers of simbench.export")
+def _read_dataset(folder: Path) -> Source:
+    """A dataset written by ``simbench generate``, through its loader (every array read is
+    compared with its SHA-256 in the manifest)."""
+    from simbench.datasets import open_dataset
+    from simbench.geometry.poses import Poses
+
+    dataset = open_dataset(folder, verify=True)
+    source = Source(folder, "dataset", {}, dataset=dataset, samples=len(dataset))
+    shared = dataset.shared
+    path = folder / "dataset.json"
+    source.grid = _grid(shared, path, "grid")
+    source.energy_kev = _positive(shared, path, "reference_energy_kev")
+    source.mu_water = _positive(shared, path, "hu_scale", "mu_water_per_mm")
+    source.mu_air = _positive(shared, path, "hu_scale", "mu_air_per_mm")
+    source.doses = {f"dose-{float(d):g}": float(d) for d in shared.get("doses", [])}
+    try:
+        source._poses = Poses.from_record(shared["geometry"])
+    except (KeyError, TypeError, ValueError):
+        raise InputError(Where(str(path), field="geometry"), "not a valid geometry record",
+                         "a dataset written by this version of simbench") from None
+    reconstruction = (dataset.record.get("spec") or {}).get("reconstruction") or {}
+    algorithm = str(reconstruction.get("use") or "reconstruction")
+    source.algorithms = [algorithm] if any(k.startswith("reconstruction/")
+                                           for k in dataset.keys) else []
+    source.names = {"scenario": str(shared.get("dataset", "")), "phantom": "",
+                    "scanner": str(shared.get("scanner", ""))}
+    source.counts_kept = any(k.startswith("counts/") for k in dataset.keys)
+    truth = (("truth image", "truth/image", "image", "truth_image"),
+             ("truth labels", "truth/labels", "image", "labels"),
+             ("truth line integrals", "truth/line_integrals", "projections", "line_integrals"))
+    items = []
+    for i in range(len(dataset)):
+        keys = dataset.sample_info(i)["arrays"]
+        ref = f"{DATASET_PREFIX}{i}:"
+        top = f"sample-{i:05d}/"
+        for role, name, kind, key in truth:
+            if key in keys:
+                items.append(Item(role, top + name, {kind: ref + key}, sample=i))
+        for dose in source.doses:
+            if f"reconstruction/{dose}" in keys:
+                items.append(Item("reconstruction", f"{top}recon/{algorithm}/{dose}",
+                                  {"image": f"{ref}reconstruction/{dose}"}, algorithm, dose,
+                                  sample=i))
+        for dose in source.doses:
+            arrays = {n: f"{ref}{n}/{dose}" for n in ("projections", "counts", "flat", "dark")
+                      if f"{n}/{dose}" in keys}
+            if "projections" in arrays:
+                items.append(Item("measured", f"{top}measured/{dose}", arrays, "", dose,
+                                  sample=i))
+    source.items = items
+    return source
 
 
 def _record(source: Source, name: str) -> dict:

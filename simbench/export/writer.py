@@ -1,7 +1,7 @@
-"""Export a run, scan or reconstruction folder into an export folder, committed whole.
+"""Export a run, scan, reconstruction or dataset folder into an export folder, committed whole.
 
 :func:`choose` turns the user's choice (truth, measured data, algorithms, doses,
-realizations) into the :class:`~simbench.export.source.Item` s to write, refusing in one line
+realizations, samples) into the :class:`~simbench.export.source.Item` s to write, refusing in one line
 what the folder or the format cannot give; :func:`export` checks the cost, then writes every
 item with the array-level writers (:mod:`~simbench.export.nxtomo`,
 :mod:`~simbench.export.tiff`, :mod:`~simbench.export.dicom`) into a folder committed by
@@ -40,6 +40,7 @@ class Choice:
     algorithms: tuple = ()
     doses: tuple = ()
     realizations: tuple = ()
+    samples: tuple = ()
     data: str | None = None
     hu_step: float | None = None
 
@@ -99,18 +100,22 @@ def choose(source, fmt: str, choice: Choice) -> list:
                              else f"nothing: this {source.kind} holds no reconstructions")
     doses = _doses(source, choice.doses)
     realizations = _realizations(source, choice.realizations)
+    samples = _samples(source, choice.samples)
     data = choice.data
     if data is not None and data not in DATA_CHOICES:
         raise InputError(_cli("--data"), f"unknown data '{data}'", ", ".join(DATA_CHOICES))
     if data == "counts" and not source.counts_kept:
-        raise InputError(_cli("--data"), f"this {source.kind} kept no raw counts (a run keeps "
-                         "them only when an algorithm reads counts)", "--data line-integrals")
+        why = {"run": " (a run keeps them only when an algorithm reads counts)",
+               "dataset": " (a dataset keeps them when its spec stores counts)"}
+        raise InputError(_cli("--data"), f"this {source.kind} kept no raw counts"
+                         f"{why.get(source.kind, '')}", "--data line-integrals")
 
     images = fmt in ("tiff", "dicom")
     picked = []
     for item in source.items:
         if item.dose and item.dose not in doses or \
-                item.realization is not None and item.realization not in realizations:
+                item.realization is not None and item.realization not in realizations or \
+                item.sample is not None and item.sample not in samples:
             continue
         role = item.role
         if role.startswith("truth") and truth:
@@ -174,6 +179,25 @@ def _realizations(source, given) -> set:
     return out
 
 
+def _samples(source, given) -> set:
+    if not given:
+        return set(range(source.samples))
+    if not source.samples:
+        raise InputError(_cli("--sample"), f"a {source.kind} folder has no samples (only "
+                         "datasets do)", "no --sample")
+    out = set()
+    for text in given:
+        try:
+            i = int(str(text))
+        except ValueError:
+            i = -1
+        if not 0 <= i < source.samples:
+            raise InputError(_cli("--sample"), f"sample '{text}' is not in this dataset",
+                             f"a whole number from 0 to {source.samples - 1}")
+        out.add(i)
+    return out
+
+
 # ------------------------------------------------------------------------------------------
 # Cost
 # ------------------------------------------------------------------------------------------
@@ -191,8 +215,7 @@ def check_cost(source, items: list, out: Path) -> None:
     from simbench.budget import check_bytes, format_bytes
     from simbench.export.nxtomo import BYTES_PER_BLOCK
 
-    sizes = {rel: int(source.marker["files"][rel]["bytes"]) for item in items
-             for rel in item.files.values()}
+    sizes = {rel: source.size(rel) for item in items for rel in item.files.values()}
     slice_bytes = 0.0
     if source.grid is not None:
         slice_bytes = 4.0 * 8.0 * source.grid.shape[1] * source.grid.shape[2]
@@ -226,7 +249,7 @@ def export(source_path: str | Path, fmt: str, out: str | Path, choice: Choice = 
     Parameters
     ----------
     source_path : str or Path
-        A run, scan or reconstruction folder written by simbench.
+        A run, scan, reconstruction or dataset folder written by simbench.
     fmt : str
         ``nxtomo``, ``tiff`` or ``dicom``.
     out : str or Path
@@ -242,7 +265,6 @@ def export(source_path: str | Path, fmt: str, out: str | Path, choice: Choice = 
         The content of ``export.json``.
     """
     from simbench.export.source import open_source
-    from simbench.folders import commit_folder
 
     check_format(fmt)
     if choice.hu_step is not None and not (np.isfinite(choice.hu_step)
@@ -250,8 +272,17 @@ def export(source_path: str | Path, fmt: str, out: str | Path, choice: Choice = 
         raise InputError(_cli("--hu-step"), f"{choice.hu_step:g} HU is out of range",
                          "a step above 0 and at most 1000 HU, e.g. 1 or 0.25")
     source = open_source(source_path)
+    try:
+        return _export(source, fmt, Path(out), choice, say)
+    finally:
+        if source.dataset is not None:
+            source.dataset.close()
+
+
+def _export(source, fmt: str, out: Path, choice: Choice, say) -> dict:
+    from simbench.folders import commit_folder
+
     items = choose(source, fmt, choice)
-    out = Path(out)
     if out.resolve() == source.folder.resolve() or source.folder.resolve() in \
             out.resolve().parents:
         raise InputError(_cli("-o"), "the export folder cannot be inside the folder it exports",
@@ -272,6 +303,7 @@ def export(source_path: str | Path, fmt: str, out: str | Path, choice: Choice = 
         for item in items:
             entry = {"name": item.name, "role": item.role, "algorithm": item.algorithm,
                      "dose": item.dose, "realization": item.realization,
+                     "sample": item.sample,
                      "source_files": {rel: source.sha256(rel) for rel in item.files.values()}}
             entry.update(_WRITERS[fmt](source, item, staging, choice))
             record["items"].append(entry)
@@ -367,7 +399,9 @@ def _write_dicom(source, item, staging: Path, choice: Choice) -> dict:
     digest = source.digest
     step = 1.0 if choice.hu_step is None else float(choice.hu_step)
     sha = source.sha256(item.files["image"])
-    study = synthetic_uid("simbench export", "study", digest)
+    # one study (one phantom) per run, scan or reconstruction, one per sample of a dataset
+    patient = digest if item.sample is None else f"{digest}:{item.sample}"
+    study = synthetic_uid("simbench export", "study", patient)
     number = 1 + [i.name for i in source.items if "image" in i.files and
                   i.role != "truth labels"].index(item.name)
     date, clock = _dicom_datetime(source.written)
@@ -377,8 +411,9 @@ def _write_dicom(source, item, staging: Path, choice: Choice) -> dict:
         study_uid=study,
         series_uid=synthetic_uid("simbench export", "series", digest, item.name, sha,
                                  repr(step), str(choice.hu_step is not None)),
-        frame_of_reference_uid=synthetic_uid("simbench export", "frame of reference", digest),
-        patient_id=f"SIMBENCH-{digest[:12]}",
+        frame_of_reference_uid=synthetic_uid("simbench export", "frame of reference", patient),
+        patient_id=f"SIMBENCH-{digest[:12]}" + ("" if item.sample is None
+                                                else f"-{item.sample}"),
         series_number=number,
         series_description=_text(description),
         study_description=_text(" ".join(p for p in (names.get("scenario"), names.get("phantom"))
@@ -388,7 +423,7 @@ def _write_dicom(source, item, staging: Path, choice: Choice) -> dict:
     folder = _target(staging, item.name)
     folder.mkdir(exist_ok=True)
     sid = sdd = None
-    if source.kind == "run":
+    if source.kind in ("run", "dataset"):
         try:
             from simbench.export.nxtomo import geometry_numbers
 
