@@ -1,4 +1,5 @@
-"""Command-line commands that export runs and datasets to open formats (added to ``simbench`` by :mod:`simbench.cli`)."""
+"""Command-line commands that export runs, scans, reconstructions and datasets to open formats
+(added to ``simbench`` by :mod:`simbench.cli`)."""
 
 from __future__ import annotations
 

@@ -281,7 +281,8 @@ def _read_dataset(folder: Path) -> Source:
                                            for k in dataset.keys) else []
     source.names = {"scenario": str(shared.get("dataset", "")), "phantom": "",
                     "scanner": str(shared.get("scanner", ""))}
-    source.counts_kept = any(k.startswith("counts/") for k in dataset.keys)
+    source.counts_kept = all(any(k.startswith(f"{n}/") for k in dataset.keys)
+                             for n in ("counts", "flat", "dark"))
     truth = (("truth image", "truth/image", "image", "truth_image"),
              ("truth labels", "truth/labels", "image", "labels"),
              ("truth line integrals", "truth/line_integrals", "projections", "line_integrals"))

@@ -1,8 +1,8 @@
 """Export a run, scan, reconstruction or dataset folder into an export folder, committed whole.
 
 :func:`choose` turns the user's choice (truth, measured data, algorithms, doses,
-realizations, samples) into the :class:`~simbench.export.source.Item` s to write, refusing in one line
-what the folder or the format cannot give; :func:`export` checks the cost, then writes every
+realizations, samples) into the :class:`~simbench.export.source.Item` s to write, refusing
+in one line what the folder or the format cannot give; :func:`export` checks the cost, then writes every
 item with the array-level writers (:mod:`~simbench.export.nxtomo`,
 :mod:`~simbench.export.tiff`, :mod:`~simbench.export.dicom`) into a folder committed by
 :func:`simbench.folders.commit_folder` (kind ``export``), with ``README.txt`` (the caution,
@@ -12,7 +12,6 @@ folder, units, rescale values and UIDs). The export folder's layout mirrors the 
 
 from __future__ import annotations
 
-import json
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -28,7 +27,6 @@ HOLDS = {"nxtomo": "projections", "tiff": "images and projections", "dicom": "im
 DATA_CHOICES = ("counts", "line-integrals")
 #: the Python package each format needs
 PACKAGES = {"nxtomo": "h5py", "tiff": "tifffile", "dicom": "pydicom"}
-SUFFIX = {"nxtomo": ".nxs", "tiff": ".tif"}
 
 
 @dataclass(frozen=True)
@@ -99,8 +97,11 @@ def choose(source, fmt: str, choice: Choice) -> list:
                              ", ".join(source.algorithms + ["all"]) if source.algorithms
                              else f"nothing: this {source.kind} holds no reconstructions")
     doses = _doses(source, choice.doses)
-    realizations = _realizations(source, choice.realizations)
-    samples = _samples(source, choice.samples)
+    realizations = _indices(source, choice.realizations, source.realizations,
+                            "--realization", "realization",
+                            "has no noise realizations to choose from")
+    samples = _indices(source, choice.samples, source.samples, "--sample", "sample",
+                       "has no samples (only datasets do)")
     data = choice.data
     if data is not None and data not in DATA_CHOICES:
         raise InputError(_cli("--data"), f"unknown data '{data}'", ", ".join(DATA_CHOICES))
@@ -154,47 +155,28 @@ def _doses(source, given) -> set:
             except ValueError:
                 label = str(text)
         if label not in source.doses:
-            raise InputError(_cli("--dose"), f"dose '{text}' is not in this run",
+            raise InputError(_cli("--dose"), f"dose '{text}' is not in this {source.kind}",
                              ", ".join(f"{v:g}" for v in source.doses.values()))
         out.add(label)
     return out
 
 
-def _realizations(source, given) -> set:
+def _indices(source, given, count: int, option: str, what: str, none: str) -> set:
+    """Whole numbers from 0 to ``count - 1`` given with ``option`` (all of them by default)."""
     if not given:
-        return set(range(source.realizations))
-    if not source.realizations:
-        raise InputError(_cli("--realization"), f"a {source.kind} folder holds one measurement",
-                         "no --realization")
+        return set(range(count))
+    if not count:
+        raise InputError(_cli(option), f"a {source.kind} folder {none}", f"no {option}")
     out = set()
     for text in given:
         try:
-            r = int(str(text))
+            index = int(str(text))
         except ValueError:
-            r = -1
-        if not 0 <= r < source.realizations:
-            raise InputError(_cli("--realization"), f"realization '{text}' is not in this run",
-                             f"a whole number from 0 to {source.realizations - 1}")
-        out.add(r)
-    return out
-
-
-def _samples(source, given) -> set:
-    if not given:
-        return set(range(source.samples))
-    if not source.samples:
-        raise InputError(_cli("--sample"), f"a {source.kind} folder has no samples (only "
-                         "datasets do)", "no --sample")
-    out = set()
-    for text in given:
-        try:
-            i = int(str(text))
-        except ValueError:
-            i = -1
-        if not 0 <= i < source.samples:
-            raise InputError(_cli("--sample"), f"sample '{text}' is not in this dataset",
-                             f"a whole number from 0 to {source.samples - 1}")
-        out.add(i)
+            index = -1
+        if not 0 <= index < count:
+            raise InputError(_cli(option), f"{what} '{text}' is not in this {source.kind}",
+                             f"a whole number from 0 to {count - 1}")
+        out.add(index)
     return out
 
 
@@ -208,7 +190,7 @@ def check_cost(source, items: list, out: Path) -> None:
 
     Memory: one image slice in float64 four times (HU, rounding) or one block of views
     (NXtomo, 64 MiB, twice). Disk: the exported arrays at their source size, plus a page of
-    DICOM header per slice; the export folder is built beside an existing one, so both must fit.
+    DICOM header per slice, against the free space where the folder is built.
     """
     import shutil
 
@@ -331,6 +313,7 @@ def _write_nxtomo(source, item, staging: Path, choice: Choice) -> dict:
     measured = item.role == "measured"
     data = choice.data or ("counts" if source.counts_kept else "line-integrals")
     counts = measured and data == "counts"
+    _require_frames(source, item, counts)
     arrays = {k: source.load(item.files[k]) for k in
               (("counts", "flat", "dark") if counts else ("projections",))}
     projections = arrays["counts" if counts else "projections"]
@@ -341,8 +324,9 @@ def _write_nxtomo(source, item, staging: Path, choice: Choice) -> dict:
                          f"{tuple(expected)}", f"a complete {source.kind} folder")
     monochromatic = item.role == "truth line integrals"
     label = item.title if measured else "exact line integrals at the reference energy"
-    notes = (f"data: {'raw counts with one flat and one dark frame' if counts else 'line integrals -ln(I/I0)'}"
-             f" ({label})")
+    kind = "raw counts with one flat and one dark frame" if counts else \
+        "line integrals -ln(I/I0)"
+    notes = f"data: {kind} ({label})"
     title = " ".join(p for p in (source.names.get("scenario") or source.names.get("phantom"),
                                  "-", label) if p)
     path = _target(staging, item.name, ".nxs")
@@ -380,6 +364,7 @@ def _write_tiff(source, item, staging: Path, choice: Choice) -> dict:
     data = choice.data or "line-integrals"
     names = ("counts", "flat", "dark") if item.role == "measured" and data == "counts" else \
         ("projections",)
+    _require_frames(source, item, len(names) == 3)
     for key in names:
         array = source.load(item.files[key])
         stem = item.name if item.role != "measured" else f"{item.name}/{key}"
@@ -443,6 +428,14 @@ def _write_dicom(source, item, staging: Path, choice: Choice) -> dict:
             "series_instance_uid": identity.series_uid,
             "frame_of_reference_uid": identity.frame_of_reference_uid,
             "series_number": number}
+
+
+def _require_frames(source, item, counts: bool) -> None:
+    """Refuse raw counts for an item that lacks its counts, flat or dark array."""
+    missing = [k for k in ("counts", "flat", "dark") if counts and k not in item.files]
+    if missing:
+        raise InputError(_cli("--data"), f"{item.title} of this {source.kind} has no "
+                         f"{', '.join(missing)}", "--data line-integrals")
 
 
 _WRITERS = {"nxtomo": _write_nxtomo, "tiff": _write_tiff, "dicom": _write_dicom}
