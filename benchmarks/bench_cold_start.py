@@ -108,6 +108,35 @@ def test_cold_vs_warm_run(benchmark, tmp_path):
           f"  cold / warm = {cold_wall / warm_wall:.2f} (wall), {cold_cpu / warm_cpu:.2f} (cpu)")
 
 
+def test_cold_start_with_and_without_the_compile_helper(benchmark, tmp_path):
+    """Two cold runs, each with its own empty cache: with the compile helper (the default on
+    two or more CPUs, simbench/execute/warm.py) and without it (SIMBENCH_COMPILE_HELPER=0)."""
+    result = {}
+
+    def cold(name: str, helper: str) -> tuple:
+        cache = tmp_path / f"cache-{name}"
+        cache.mkdir()
+        env = child_env(cache)
+        env["SIMBENCH_COMPILE_HELPER"] = helper
+        return run_scenario(tmp_path / name, env)
+
+    def both():
+        result["without"] = cold("without", "0")
+        result["with"] = cold("with", "1")
+
+    benchmark.pedantic(both, rounds=1, iterations=1)
+    (w_wall, w_cpu, w_st), (h_wall, h_cpu, h_st) = result["without"], result["with"]
+    benchmark.extra_info.update({"scenario": SCENARIO, "cpu": cpu(),
+                                 "without_helper_wall_s": w_wall, "with_helper_wall_s": h_wall,
+                                 "with_over_without_wall": h_wall / w_wall})
+    print(f"\n{SCENARIO} {cpu()}\n"
+          f"  cold without the compile helper: wall {w_wall:.1f} s, cpu {w_cpu:.1f} s; "
+          f"stages {stages(w_st, w_wall)}\n"
+          f"  cold with the compile helper:    wall {h_wall:.1f} s, cpu {h_cpu:.1f} s "
+          f"(the helper process's CPU included); stages {stages(h_st, h_wall)}\n"
+          f"  with / without = {h_wall / w_wall:.2f} (wall)")
+
+
 @pytest.mark.parametrize("command", [["--help"], ["list"]], ids=["help", "list"])
 def test_small_command_start(benchmark, command):
     env = child_env(Path(tempfile.gettempdir()) / "simbench-bench-start-cache")

@@ -45,7 +45,8 @@ BETTER_TEXT = {"lower": "lower", "higher": "higher", "zero": "closer to 0", "non
 ROI_COLUMNS = (("mean_hu", "mean (HU)"), ("bias_hu", "bias (HU)"), ("std_hu", "noise (HU)"),
                ("cnr", "CNR"))
 
-STAGE_LABELS = {"trace": "trace (path lengths)", "measure": "measure (counts, noise)",
+STAGE_LABELS = {"truth": "truth (reference energy, image, labels)",
+                "trace": "trace (path lengths)", "measure": "measure (counts, noise)",
                 "reconstruct": "reconstruct", "score": "score", "report": "report"}
 
 STYLE = """
