@@ -25,7 +25,7 @@ from simbench.cli import main
 SPEC = """\
 name: tiny inserts
 description: test data
-phantom: water-ellipse-inserts
+phantom: random-inserts
 scanner:
   name: tiny parallel
   geometry: {type: parallel, dimension: 2, columns: 40, column_pitch: 10 mm, views: 24,
@@ -172,12 +172,12 @@ def test_loader_random_access_info_and_worker_processes(reference):
     mu_water = info["hu_scale"]["mu_water_per_mm"]
     assert mu_water == pytest.approx(0.02059, rel=0.01)
     labels, image = sample["labels"], sample["truth_image"]
-    water = info["phantom"]["roi_names"].index("water") + 1
+    water = info["phantom"]["roi_names"].index("centre water") + 1
     assert np.allclose(image[labels == water], mu_water, rtol=1e-6)
-    # a noise-free truth: with the same phantom every sample has the same line integrals,
-    # while the noise differs from sample to sample (its own stream)
-    assert np.array_equal(ds[0]["line_integrals"], ds[5]["line_integrals"])
-    assert not np.array_equal(ds[0]["counts/dose-1"], ds[5]["counts/dose-1"])
+    # each sample is its own draw of the family, with the parameters drawn in the manifest
+    assert info["phantom"]["parameters"]["body"]["shape"] == "ellipse"
+    assert ds.sample_info(0)["phantom"]["parameters"] != info["phantom"]["parameters"]
+    assert not np.array_equal(ds[0]["line_integrals"], ds[5]["line_integrals"])
     with pytest.raises(IndexError):
         ds[6]
     # a training framework's worker processes: pickled, or forked with the file open
@@ -314,7 +314,7 @@ def test_bad_spec_keys_are_located_one_line_errors(tmp_path, capsys, extra, plac
     ("store: [truth_image,", "store: [truth_images,", "store[0]"),
     ("compression: gzip", "compression: zstd", "compression"),
     ("compression: gzip", "compression: lzf\ncompression_level: 2", "compression_level"),
-    ("phantom: water-ellipse-inserts", "phantom: no-such-phantom", "phantom"),
+    ("phantom: random-inserts", "phantom: no-such-phantom", "phantom"),
     ("doses: [1.0, 0.5]", "doses: [1.0, 1.0]", "doses"),
 ])
 def test_bad_spec_values_name_the_field(tmp_path, capsys, old, new, place):

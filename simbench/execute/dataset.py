@@ -135,7 +135,7 @@ class DatasetPlan:
         water_air = mu_table([get_material("water"), get_material("air")],
                              [self.reference_energy_kev])[:, 0]
         self.mu_water, self.mu_air = (float(v) for v in water_air)
-        self.keys = self._keys(phantom)
+        self.keys = self._keys()
         self._check_memory(phantom, workers)
         if spec.reconstruction is not None:
             check_reconstruction_memory(float(np.prod(self.poses.projection_shape)), self.grid)
@@ -161,7 +161,7 @@ class DatasetPlan:
         weights = np.sum(state.metadata["signal_weights_per_bin"], axis=0)
         return detected_effective_energy_kev(state.metadata["energies_kev"], weights)
 
-    def _keys(self, phantom) -> dict:
+    def _keys(self) -> dict:
         spec, shape = self.spec, list(self.poses.projection_shape)
         n_bins = spec.scanner.physics.detector.n_bins
         measured = ([n_bins] if n_bins > 1 else []) + shape
@@ -472,6 +472,7 @@ def generate(plan: DatasetPlan, executor, *, start_over: bool = False, progress:
         reused, removed = _inspect_shards(plan)
         todo = [ShardTask(plan, k, a, b) for k, a, b in plan.shards if shard_name(k) not in reused]
         samples_todo = sum(t.stop - t.first for t in todo)
+        _warn_if_disk_short(plan, samples_todo)
         bar = _bar(samples_todo, plan.spec.name, progress)
         try:
             for task, count in executor.map_unordered(write_shard, todo, label=str):
@@ -495,6 +496,23 @@ def generate(plan: DatasetPlan, executor, *, start_over: bool = False, progress:
         f"'simbench verify {out}'")
     return {"reused": len(reused), "written": len(todo), "removed": dict(removed),
             "samples_written": samples_todo, "seconds": seconds}
+
+
+def _warn_if_disk_short(plan: DatasetPlan, samples: int) -> None:
+    """Warn (one line) when the samples still to make, uncompressed, exceed the free disk
+    (compression usually makes them much smaller, so this is not refused)."""
+    from simbench.budget import format_bytes
+    from simbench.errors import warn_input
+
+    need = samples * plan.sample_bytes(len(plan.materials_example))
+    try:
+        free = shutil.disk_usage(plan.out).free
+    except OSError:
+        return
+    if need > free:
+        warn_input(plan.spec.at("samples"), f"{samples} samples are {format_bytes(need)} "
+                   f"before compression and '{plan.out}' has {format_bytes(free)} free; if "
+                   "the disk fills, the shard being written is removed and a rerun resumes")
 
 
 def _claim(plan: DatasetPlan, start_over: bool, where: Where) -> None:
