@@ -19,6 +19,8 @@ def add_commands(command) -> None:
     p.add_argument("--scheduler", default=None, metavar="ADDRESS",
                    help="run on a Dask cluster, e.g. tcp://host:8786 (its workers must see the "
                         "dataset folder at the same path)")
+    p.add_argument("--allow-code", action="store_true",
+                   help="allow the module or file path of the spec's reconstructor to run")
     p.add_argument("--start-over", action="store_true",
                    help="if the folder holds a dataset of another spec, delete it first")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
@@ -57,7 +59,7 @@ def cmd_generate(args) -> int:
     from simbench.execute.executors import open_executor
 
     workers = _workers(args.workers)
-    spec = load_dataset_spec(args.spec)
+    spec = load_dataset_spec(args.spec, allow_code=args.allow_code)
     plan = DatasetPlan(spec, Path(args.output), workers=workers or 1)
     with open_executor(workers=workers, scheduler=args.scheduler) as executor:
         generate(plan, executor, start_over=args.start_over, progress=not args.quiet)

@@ -369,3 +369,18 @@ def test_a_task_whose_worker_dies_is_run_once_more_and_a_second_death_is_one_lin
         assert list(executor.map_unordered(_dies_first_time, [flag])) == [(flag, 7)]
         with pytest.raises(InputError, match="died twice"):
             list(executor.map_unordered(_always_dies, ["shard-00003"]))
+
+
+def test_a_reconstructor_named_by_file_runs_only_with_allow_code(tmp_path, capsys):
+    plugin = tmp_path / "my_recon.py"
+    plugin.write_text("import numpy as np\n\n\ndef blank(acquisition, grid):\n"
+                      "    return np.full(grid.image_shape, 0.5, dtype=np.float32)\n")
+    spec = write_spec(tmp_path, samples=2, extra=f"reconstruction: {{use: '{plugin}:blank'}}\n")
+    out = tmp_path / "data"
+    assert main(["generate", str(spec), "-o", str(out), "--quiet"]) == 2
+    assert "--allow-code" in capsys.readouterr().err and not out.exists()
+    assert main(["generate", str(spec), "-o", str(out), "--quiet", "--allow-code"]) == 0
+    from simbench.datasets import open_dataset
+
+    image = open_dataset(out)[1]["reconstruction/dose-0.5"]
+    assert image.shape == (32, 32) and (image == 0.5).all()

@@ -289,7 +289,7 @@ def make_sample(plan: DatasetPlan, index: int) -> tuple[dict, dict]:
     if spec.reconstruction is not None:
         from simbench.recon.registry import find_reconstructor
 
-        reconstructor = find_reconstructor(spec.reconstruction[0], allow_code=False)
+        reconstructor = find_reconstructor(spec.reconstruction[0], allow_code=spec.allow_code)
         options = reconstructor.check_options(spec.reconstruction[1])
     measured = [name for name in ("projections", "counts") if name in spec.store]
     keep = set(measured)
@@ -619,6 +619,10 @@ def _record(plan: DatasetPlan, state: str) -> dict:
 def read_record(folder: Path) -> dict:
     """The ``dataset.json`` of a dataset folder; one line of error if it is not one."""
     path = Path(folder) / RECORD
+    if not Path(folder).is_dir():
+        raise InputError(Where(str(folder)), "not a dataset folder (no such folder)"
+                         if not Path(folder).exists() else "not a dataset folder (a file)",
+                         "a folder written by simbench generate")
     try:
         record = json.loads(path.read_text(encoding="utf-8"))
     except FileNotFoundError:

@@ -80,6 +80,8 @@ class DatasetSpec:
     compression_level : int
     source : str
         The spec file.
+    allow_code : bool
+        The reconstructor may be a module or file path (``--allow-code``).
     """
 
     name: str
@@ -101,19 +103,23 @@ class DatasetSpec:
     compression_level: int
     source: str
     wheres: dict = field(default_factory=dict, compare=False, repr=False)
+    allow_code: bool = field(default=False, compare=False)
 
     def at(self, key: str) -> Where:
         """The place of a top-level field (for messages about it)."""
         return self.wheres.get(key, Where(self.source, field=key))
 
 
-def load_dataset_spec(path: str | Path) -> DatasetSpec:
+def load_dataset_spec(path: str | Path, *, allow_code: bool = False) -> DatasetSpec:
     """Read and validate a dataset spec (and the phantom family and scanner it names).
 
     Parameters
     ----------
     path : str or Path
         A spec file, or the name of a shipped one (``simbench/data/datasets``).
+    allow_code : bool
+        Allow a ``module:function`` or ``file.py:function`` reconstructor (the command
+        line's ``--allow-code``); code named in a file is not run otherwise.
 
     Raises
     ------
@@ -126,10 +132,12 @@ def load_dataset_spec(path: str | Path) -> DatasetSpec:
     if not path.exists() and path.parent == Path("."):
         stem = path.name[:-5] if path.name.endswith(".yaml") else path.name
         path = shipped_files("datasets").get(stem, path)
-    return read_dataset_spec(load_yaml(path, "dataset spec"), str(path), path.parent)
+    return read_dataset_spec(load_yaml(path, "dataset spec"), str(path), path.parent,
+                             allow_code=allow_code)
 
 
-def read_dataset_spec(document: Any, source: str, directory: Path) -> DatasetSpec:
+def read_dataset_spec(document: Any, source: str, directory: Path, *,
+                      allow_code: bool = False) -> DatasetSpec:
     """Turn a located YAML document into a :class:`DatasetSpec`."""
     from simbench.scenario.spec import _doses, _grid, _reference_energy, _scanner
     from simbench.spec import check_integer
@@ -153,7 +161,7 @@ def read_dataset_spec(document: Any, source: str, directory: Path) -> DatasetSpe
     seed = top.integer("seed", 0, minimum=0, maximum=2**63 - 1)
     noise = top.boolean("noise", True)
     store = _store(top)
-    reconstruction = _reconstruction(top)
+    reconstruction = _reconstruction(top, allow_code)
     per_shard = top.integer("samples_per_shard", DEFAULT_SAMPLES_PER_SHARD, minimum=1,
                             maximum=MAX_SAMPLES_PER_SHARD)
     compression = top.string("compression", "gzip", choices=COMPRESSIONS)
@@ -167,7 +175,7 @@ def read_dataset_spec(document: Any, source: str, directory: Path) -> DatasetSpe
     return DatasetSpec(name, description, family, scanner, family_ref, scanner_ref,
                        _grid(top, scanner), _reference_energy(top), _doses(top), samples, seed,
                        noise, store, reconstruction, per_shard, compression, level, source,
-                       wheres)
+                       wheres, allow_code)
 
 
 def _family(top: Section, directory: Path):
@@ -202,7 +210,7 @@ def _store(top: Section) -> tuple:
     return tuple(names)
 
 
-def _reconstruction(top: Section) -> tuple | None:
+def _reconstruction(top: Section, allow_code: bool) -> tuple | None:
     if not top.has("reconstruction"):
         return None
     from simbench.recon.registry import find_reconstructor
@@ -210,7 +218,7 @@ def _reconstruction(top: Section) -> tuple | None:
     s = top.section("reconstruction")
     s.check_keys(RECONSTRUCTION_KEYS, required=("use",))
     use = s.string("use")
-    reconstructor = find_reconstructor(use, allow_code=False, where=s.at("use"))
+    reconstructor = find_reconstructor(use, allow_code=allow_code, where=s.at("use"))
     options = {}
     if s.has("options"):
         section = s.section("options")
