@@ -230,8 +230,11 @@ def cmd_run(args: argparse.Namespace) -> int:
     from simbench.scenario import load_scenario
 
     scenario = load_scenario(resolve(args.scenario, "scenarios"))
+    from simbench.cli_scale import _workers as workers_option
+
     run_scenario(scenario, Path(args.output), allow_code=args.allow_code,
-                 progress=not args.quiet and sys.stderr.isatty(), reuse=not args.fresh)
+                 progress=not args.quiet and sys.stderr.isatty(), reuse=not args.fresh,
+                 workers=workers_option(args.workers), scheduler=args.scheduler)
     return 0
 
 
@@ -511,6 +514,12 @@ def build_parser() -> argparse.ArgumentParser:
                    help="make everything again (default: take over the finished truth, "
                         "measurements and built-in reconstructions of an interrupted or earlier "
                         "run into DIR whose inputs are unchanged, and say so)")
+    p.add_argument("--workers", default=None, metavar="N",
+                   help="measure and reconstruct on N local worker processes (default: in this "
+                        "process; the results are the same bits)")
+    p.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                   help="run on a Dask cluster, e.g. tcp://host:8786 (its workers must see DIR "
+                        "at the same path)")
     p.set_defaults(run=cmd_run)
 
     p = command("compare", "Compare runs: one table across runs, algorithms and doses of the main "

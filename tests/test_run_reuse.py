@@ -167,3 +167,21 @@ def test_plug_in_reconstructions_are_always_made_again(tmp_path, capsys):
     capsys.readouterr()
     assert main(args) == 0
     assert "measurements 1 of 1, reconstructions 1 of 2" in capsys.readouterr().out
+
+
+def test_two_worker_processes_give_the_same_bits(reference, tmp_path, capsys):
+    # the project's rule: same seed, same bits, whatever runs the tasks (ARCHITECTURE.md)
+    out = tmp_path / "out"
+    assert main(["run", str(reference / "s.yaml"), "-o", str(out), "--quiet",
+                 "--workers", "2"]) == 0
+    assert "running on 2 local worker processes" in capsys.readouterr().out
+    _same(out, reference / "whole")
+    assert _scores(out) == _scores(reference / "whole")
+
+
+def test_a_bad_worker_count_is_one_line(reference, tmp_path, capsys):
+    assert main(["run", str(reference / "s.yaml"), "-o", str(tmp_path / "out"), "--quiet",
+                 "--workers", "zero"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "--workers" in err[0] and "(valid:" in err[0]
+    assert not (tmp_path / "out").exists()

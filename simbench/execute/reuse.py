@@ -101,6 +101,7 @@ class Ledger:
                  previous: Path | None = None):
         self.staging, self.expected = staging, expected
         self.items: dict[str, dict] = {}
+        self.made: dict[str, dict] = {}
         self.taken = {"interrupted": [], "previous": []}
         adopted = _read_ledger(staging / LEDGER)
         keep: set[str] = set()
@@ -149,6 +150,12 @@ class Ledger:
         entry = self.items.get(name)
         return None if entry is None else entry.get("values", {})
 
+    def values_of(self, name: str) -> dict:
+        """The values of an item made by this run or taken over ({} if neither)."""
+        if name in self.made:
+            return self.made[name]
+        return self.items.get(name, {}).get("values", {})
+
     def drop(self, name: str) -> None:
         """Make an item again after all: forget it and delete its files (a linked file is
         unlinked, never written through)."""
@@ -164,6 +171,7 @@ class Ledger:
 
     def record(self, name: str, files: list[Path], values: dict | None = None) -> None:
         """Record a finished item (its files complete in the staging folder)."""
+        self.made[name] = values or {}
         key = self.expected.get(name)
         if key is None:
             return

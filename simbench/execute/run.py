@@ -26,6 +26,7 @@ import contextlib
 import json
 import shutil
 import time
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -132,6 +133,7 @@ class RunPlan:
                     f"{scenario.realizations} realizations of a "
                     f"{' x '.join(map(str, self.grid.shape))} image", "fewer realizations or a "
                     "smaller grid")
+        self.allow_code = allow_code
         self.needs_counts = any(rec.stage == "counts" for _, rec, _ in self.algorithms)
         self.first = (dose_label(scenario.doses[0]), 0)
         self.total_steps = len(scenario.doses) * scenario.realizations * (
@@ -164,7 +166,8 @@ class RunPlan:
 
 
 def run_scenario(scenario, out: Path, *, allow_code: bool = False, progress: bool = True,
-                 say=print, reuse: bool = True) -> dict:
+                 say=print, reuse: bool = True, workers: int | None = None,
+                 scheduler: str | None = None) -> dict:
     """Run a scenario into the folder ``out`` (committed whole).
 
     Parameters
@@ -181,6 +184,10 @@ def run_scenario(scenario, out: Path, *, allow_code: bool = False, progress: boo
         Take over the finished items (truth, measurements, built-in reconstructions) of an
         interrupted run into ``out``, or of the complete run already there, whose inputs are
         the same (:mod:`simbench.execute.reuse`); False makes everything again.
+    workers, scheduler : optional
+        Run the measurements and reconstructions on local worker processes or on a Dask
+        cluster (:func:`simbench.execute.executors.open_executor`); default in this process.
+        The bits are the same either way.
 
     Returns
     -------
@@ -191,8 +198,13 @@ def run_scenario(scenario, out: Path, *, allow_code: bool = False, progress: boo
     from simbench.folders import commit_folder
 
     from simbench.execute import warm
+    from simbench.execute.executors import open_executor
 
     plan = RunPlan(scenario, out, allow_code=allow_code)
+    if (workers or scheduler) and not Path(str(scenario.source)).is_file():
+        raise InputError(Where("<command line>", field="--workers"), "a scenario that is not "
+                         "read from a file cannot be sent to worker processes",
+                         "a scenario file, or no --workers/--scheduler")
     _import_in_background("matplotlib.pyplot")  # the report needs it; the run has CPU to spare
     started = time.perf_counter()
     timings = dict.fromkeys(STAGES, 0.0)
@@ -201,6 +213,9 @@ def run_scenario(scenario, out: Path, *, allow_code: bool = False, progress: boo
         stack.callback(warm.stop, helper)
         staging = stack.enter_context(commit_folder(out, "run",
                                                     resume=LEDGER if reuse else None))
+        executor = stack.enter_context(open_executor(workers, scheduler))
+        if workers or scheduler:
+            say(f"running {executor.description}")
         keys = plan.item_keys() if reuse else dict.fromkeys(plan.item_keys())
         ledger = Ledger(staging, keys, previous=out if reuse else None)
         reused = ledger.summary()
@@ -210,7 +225,8 @@ def run_scenario(scenario, out: Path, *, allow_code: bool = False, progress: boo
             t0 = time.perf_counter()
             truth = _write_truth(staging, plan, timings, ledger)
             timings["truth"] = time.perf_counter() - t0
-            results = _measure_reconstruct_score(staging, plan, truth, timings, bar, ledger)
+            _measure_and_reconstruct(staging, plan, truth, timings, bar, ledger, executor)
+        results = _score(staging, plan, truth, timings, ledger)
         metrics = _metrics_record(plan, truth, results, timings, started)
         metrics["run"]["reused"] = {source: names for source, names in ledger.taken.items()}
         from simbench.atomic import write_json
@@ -282,7 +298,7 @@ class _Truth:
 
 
 def _write_truth(staging: Path, plan: RunPlan, timings: dict, ledger) -> _Truth:
-    from simbench.execute.scan import TraceCache, scan_into
+    from simbench.execute.scan import scan_into
     from simbench.materials import get_material, mu_table
     from simbench.phantom import rasterize
     from simbench.phantom.rasterize import label_map
@@ -290,14 +306,6 @@ def _write_truth(staging: Path, plan: RunPlan, timings: dict, ledger) -> _Truth:
     scenario = plan.scenario
     truth = _Truth()
     first = plan.scans[scenario.doses[0]]
-    # path lengths are traced once and shared by every dose and realization when they fit
-    from simbench.budget import memory_budget_bytes
-
-    n_sub = (1 if first.spot is None else len(first.spot)) * \
-        (1 if first.cells is None else len(first.cells))
-    traced_bytes = 8.0 * first.n_materials * n_sub * float(np.prod(first.shape))
-    keep = traced_bytes < 0.25 * memory_budget_bytes()[0]
-    truth.cache = TraceCache(first, keep=keep)
     from simbench.geometry import field_of_view_radius_mm
 
     radius = field_of_view_radius_mm(plan.poses)
@@ -352,103 +360,216 @@ def _one_view(plan):
     return probe
 
 
-def _measure_reconstruct_score(staging: Path, plan: RunPlan, truth: _Truth, timings: dict,
-                               bar, ledger) -> dict:
+@dataclass(frozen=True)
+class RunTask:
+    """One measurement of a run and the reconstructions made from it: the unit of work sent to
+    an executor (:mod:`simbench.execute.executors`). Small and picklable: a worker process
+    rebuilds the plan from the scenario file, and refuses if its keys differ from the run's
+    (the file was edited during the run)."""
+
+    token: str
+    scenario_file: str
+    allow_code: bool
+    staging: str
+    dose: float
+    realization: int
+    measure: bool                # False: the measurement is taken over, only reconstruct
+    write_truth: bool            # also write the exact line integrals (the first measurement)
+    algorithms: tuple            # names of the algorithms to run on it
+    reference_energy_kev: float
+    measured_key: str | None
+    metadata: dict | None        # the taken-over measurement's metadata
+
+    @property
+    def label(self) -> str:
+        return f"{dose_label(self.dose)}/realization-{self.realization}"
+
+
+#: plans of the runs in this process, by token (a worker process rebuilds its own)
+_PLANS: dict = {}
+#: this process's traced path lengths: (plan token, TraceCache)
+_TRACED: dict = {}
+
+
+def _plan_for(task: RunTask) -> RunPlan:
+    plan = _PLANS.get(task.token)
+    if plan is None:
+        from simbench.scenario import load_scenario
+
+        _PLANS.clear()
+        plan = RunPlan(load_scenario(task.scenario_file), Path(task.staging),
+                       allow_code=task.allow_code)
+        if plan.item_keys().get(f"measured/{task.label}") != task.measured_key:
+            raise InputError(Where(task.scenario_file), "the scenario file changed while the "
+                             "run was going on", "run it again once the file is final")
+        _PLANS[task.token] = plan
+    return plan
+
+
+def _trace_cache(plan: RunPlan, token: str, dose: float):
+    """The path lengths of this plan, traced once per process and shared by every dose."""
+    from simbench.budget import memory_budget_bytes
+    from simbench.execute.scan import TraceCache
+
+    scan = plan.scans[dose]
+    if _TRACED.get("token") != token:
+        first = plan.scans[plan.scenario.doses[0]]
+        n_sub = (1 if first.spot is None else len(first.spot)) * \
+            (1 if first.cells is None else len(first.cells))
+        traced_bytes = 8.0 * first.n_materials * n_sub * float(np.prod(first.shape))
+        _TRACED.clear()
+        _TRACED.update(token=token, blocks={},
+                       keep=traced_bytes < 0.25 * memory_budget_bytes()[0])
+    cache = TraceCache(scan, keep=_TRACED["keep"])
+    cache.blocks = _TRACED["blocks"]  # same geometry for every dose: share the traced blocks
+    return cache
+
+
+def run_task(task: RunTask) -> dict:
+    """Measure (unless taken over) and reconstruct one realization of one dose.
+
+    Writes ``measured/<dose>/<realization>/`` and ``recon/<algorithm>/<dose>/<realization>.npy``
+    in the staging folder, and returns what the run's ledger records: the measurement's
+    metadata and timings, and each reconstruction's wall time and peak memory.
+    """
     from simbench.atomic import as_json_values
     from simbench.execute.reconstruct import timed_reconstruction
-    from simbench.execute.scan import TraceCache, scan_into
+    from simbench.execute.scan import scan_into
     from simbench.recon.contract import Acquisition
+
+    plan = _plan_for(task)
+    scenario, staging = plan.scenario, Path(task.staging)
+    folder = staging / "measured" / dose_label(task.dose) / f"realization-{task.realization}"
+    out: dict = {"timings": {"trace": 0.0, "measure": 0.0}, "recon": {}}
+    if task.measure:
+        shutil.rmtree(folder, ignore_errors=True)  # a retried task starts clean
+        folder.mkdir(parents=True)
+        t0 = time.perf_counter()
+        state = scan_into(folder, plan.scans[task.dose], seed=scenario.seed, noise=True,
+                          identity=run_identity(scenario, task.dose, task.realization),
+                          reference_energy_kev=task.reference_energy_kev,
+                          write_truth=task.write_truth,
+                          lengths=_trace_cache(plan, task.token, task.dose))
+        out["timings"] = {"trace": state.timings["trace"],
+                          "measure": time.perf_counter() - t0 - state.timings["trace"]}
+        if task.write_truth:
+            (folder / "truth" / "path_lengths.npy").unlink()
+        if not plan.needs_counts:
+            for name in ("counts", "flat", "dark"):
+                (folder / "measured" / f"{name}.npy").unlink()
+        metadata = out["metadata"] = as_json_values(state.metadata)
+    else:
+        metadata = task.metadata
+    arrays = {name: np.load(folder / "measured" / f"{name}.npy", mmap_mode="r")
+              if (folder / "measured" / f"{name}.npy").exists() else None
+              for name in ("projections", "counts", "flat", "dark")}
+    record = {"measurement": metadata, "truth": {
+        "reference_energy_kev": task.reference_energy_kev}, "physics": metadata.get("physics")}
+    acquisition = Acquisition(plan.poses, metadata=record, source=str(folder), **arrays)
+    for spec, reconstructor, options in plan.algorithms:
+        if spec.name not in task.algorithms:
+            continue
+        image, seconds, peak = timed_reconstruction(reconstructor, acquisition, plan.grid,
+                                                    options)
+        target = staging / "recon" / spec.name / dose_label(task.dose)
+        target.mkdir(parents=True, exist_ok=True)
+        np.save(target / f"realization-{task.realization}.npy", image)
+        out["recon"][spec.name] = {"seconds": seconds, "peak_bytes": peak}
+    return out
+
+
+def _tasks(staging: Path, plan: RunPlan, truth: _Truth, ledger, token: str) -> list:
+    scenario = plan.scenario
+    keys = plan.item_keys()
+    tasks = []
+    for dose in scenario.doses:
+        for r in range(scenario.realizations):
+            label = f"{dose_label(dose)}/realization-{r}"
+            known = ledger.get(f"measured/{label}")
+            todo = tuple(spec.name for spec, _, _ in plan.algorithms
+                         if ledger.get(f"recon/{spec.name}/{label}") is None)
+            if known is not None and not todo:
+                continue
+            first = (dose_label(dose), r) == plan.first
+            tasks.append(RunTask(token, str(scenario.source), plan.allow_code, str(staging),
+                                 dose, r, known is None, first and not truth.reused, todo,
+                                 truth.energy, keys[f"measured/{label}"],
+                                 None if known is None else known["metadata"]))
+    return tasks
+
+
+def _measure_and_reconstruct(staging: Path, plan: RunPlan, truth: _Truth, timings: dict,
+                             bar, ledger, executor) -> None:
+    """Run every task not taken over, on the executor, and record each in the ledger."""
+    import secrets
+
+    token = secrets.token_hex(8)
+    _PLANS[token] = plan
+    tasks = _tasks(staging, plan, truth, ledger, token)
+    steps = {t.label: (1 if t.measure else 0) + len(t.algorithms) for t in tasks}
+    bar.update(plan.total_steps - sum(steps.values()))  # taken over
+    truth_values = {"energy_kev": truth.energy, "mu_water": truth.mu_water,
+                    "mu_air": truth.mu_air}
+    try:
+        for task, result in executor.map_unordered(run_task, tasks,
+                                                   label=lambda t: f"{plan.scenario.source}: "
+                                                   f"{t.label}"):
+            folder = staging / "measured" / dose_label(task.dose) / \
+                f"realization-{task.realization}"
+            for stage in ("trace", "measure"):
+                timings[stage] += result["timings"][stage]
+            if task.write_truth:
+                (folder / "truth" / "line_integrals.npy").rename(
+                    staging / "truth" / "line_integrals.npy")
+                shutil.rmtree(folder / "truth")
+                ledger.record("truth", [staging / "truth" / f"{name}.npy" for name in
+                                        ("image", "labels", "line_integrals")], truth_values)
+            if task.measure:
+                ledger.record(f"measured/{task.label}", sorted(folder.rglob("*.npy")),
+                              {"metadata": result["metadata"]})
+            for name, values in result["recon"].items():
+                timings["reconstruct"] += values["seconds"]
+                path = staging / "recon" / name / dose_label(task.dose) / \
+                    f"realization-{task.realization}.npy"
+                ledger.record(f"recon/{name}/{task.label}", [path], values)
+            bar.update(steps[task.label])
+            bar.set_postfix_str(task.label)
+    finally:
+        _PLANS.pop(token, None)
+        _TRACED.clear()
+
+
+def _score(staging: Path, plan: RunPlan, truth: _Truth, timings: dict, ledger) -> dict:
+    """Score every algorithm at every dose from the images in the staging folder."""
     from simbench.scenario.scoring import ScoringContext, score_realizations
 
     scenario = plan.scenario
+    t0 = time.perf_counter()
     context = ScoringContext(truth.image, truth.labels, plan.grid, scenario.phantom,
                              scenario.rois, truth.mu_water, truth.mu_air, truth.fov,
                              scenario.detectability_task)
     results: dict = {spec.name: {} for spec, _, _ in plan.algorithms}
-    seeds: dict = {}
-    truth_values = {"energy_kev": truth.energy, "mu_water": truth.mu_water,
-                    "mu_air": truth.mu_air}
     for dose in scenario.doses:
-        scan = plan.scans[dose]
-        cache = truth.cache
-        if cache.plan is not scan:  # same geometry, other exposure: share the traced blocks
-            shared = TraceCache(scan, keep=cache.keep)
-            shared.blocks = cache.blocks
-            cache = shared
-        images = {spec.name: [] for spec, _, _ in plan.algorithms}
-        walls = {spec.name: [] for spec, _, _ in plan.algorithms}
-        peaks = {spec.name: [] for spec, _, _ in plan.algorithms}
-        reproj = {spec.name: [] for spec, _, _ in plan.algorithms}
-        for r in range(scenario.realizations):
-            label = f"{dose_label(dose)}/realization-{r}"
-            folder = staging / "measured" / dose_label(dose) / f"realization-{r}"
-            identity = run_identity(scenario, dose, r)
-            known = ledger.get(f"measured/{label}")
-            if known is None:
-                folder.mkdir(parents=True, exist_ok=True)
-                t0 = time.perf_counter()
-                write_truth = not truth.reused
-                state = scan_into(folder, scan, seed=scenario.seed, noise=True,
-                                  identity=identity, reference_energy_kev=truth.energy,
-                                  write_truth=write_truth, lengths=cache)
-                timings["measure"] += time.perf_counter() - t0 - state.timings["trace"]
-                timings["trace"] += state.timings["trace"]
-                if write_truth:
-                    (folder / "truth" / "line_integrals.npy").rename(
-                        staging / "truth" / "line_integrals.npy")
-                    shutil.rmtree(folder / "truth")
-                    ledger.record("truth", [staging / "truth" / f"{name}.npy" for name in
-                                            ("image", "labels", "line_integrals")],
-                                  truth_values)
-                    truth.reused = True  # made now: later measurements leave it alone
-                if not plan.needs_counts:
-                    for name in ("counts", "flat", "dark"):
-                        (folder / "measured" / f"{name}.npy").unlink()
-                metadata = as_json_values(state.metadata)
-                ledger.record(f"measured/{label}", sorted(folder.rglob("*.npy")),
-                              {"metadata": metadata})
-            else:
-                metadata = known["metadata"]
-            seeds.setdefault(dose_label(dose), []).append(
-                {"realization": r, "root_seed": scenario.seed, "identity": list(identity)})
-            arrays = {name: np.load(folder / "measured" / f"{name}.npy", mmap_mode="r")
-                      if (folder / "measured" / f"{name}.npy").exists() else None
-                      for name in ("projections", "counts", "flat", "dark")}
-            record = {"measurement": metadata, "truth": {
-                "reference_energy_kev": truth.energy}, "physics": metadata.get("physics")}
-            acquisition = Acquisition(plan.poses, metadata=record, source=str(folder),
-                                      **arrays)
-            bar.update(1)
-            for spec, reconstructor, options in plan.algorithms:
-                bar.set_postfix_str(f"{spec.name}, {dose_label(dose)}, realization {r}")
-                target = staging / "recon" / spec.name / dose_label(dose)
-                path = target / f"realization-{r}.npy"
-                name = f"recon/{spec.name}/{label}"
-                known = ledger.get(name)
-                if known is None:
-                    image, seconds, peak = timed_reconstruction(reconstructor, acquisition,
-                                                                plan.grid, options)
-                    timings["reconstruct"] += seconds
-                    target.mkdir(parents=True, exist_ok=True)
-                    np.save(path, image)
-                    ledger.record(name, [path], {"seconds": seconds, "peak_bytes": peak})
-                else:
-                    image = np.load(path)
-                    seconds, peak = known["seconds"], known["peak_bytes"]
-                images[spec.name].append(image)
-                walls[spec.name].append(seconds)
-                peaks[spec.name].append(peak)
-                if "projection_error" in scenario.metrics:
-                    reproj[spec.name].append(_reprojection_rmse(plan, image, staging))
-                bar.update(1)
-        t0 = time.perf_counter()
+        seeds = [{"realization": r, "root_seed": scenario.seed,
+                  "identity": list(run_identity(scenario, dose, r))}
+                 for r in range(scenario.realizations)]
         for spec, _, _ in plan.algorithms:
+            images, walls, peaks, reproj = [], [], [], []
+            for r in range(scenario.realizations):
+                label = f"{dose_label(dose)}/realization-{r}"
+                image = np.load(staging / "recon" / spec.name / dose_label(dose) /
+                                f"realization-{r}.npy")
+                values = ledger.values_of(f"recon/{spec.name}/{label}")
+                images.append(image)
+                walls.append(values.get("seconds", np.nan))
+                peaks.append(values.get("peak_bytes", np.nan))
+                if "projection_error" in scenario.metrics:
+                    reproj.append(_reprojection_rmse(plan, image, staging))
             results[spec.name][dose_label(dose)] = dict(
-                score_realizations(images[spec.name], context, scenario.metrics,
-                                   wall_times=walls[spec.name], peak_bytes=peaks[spec.name],
-                                   reprojection_errors=reproj[spec.name]),
-                seeds=seeds[dose_label(dose)])
-        timings["score"] += time.perf_counter() - t0
+                score_realizations(images, context, scenario.metrics, wall_times=walls,
+                                   peak_bytes=peaks, reprojection_errors=reproj),
+                seeds=seeds)
+    timings["score"] += time.perf_counter() - t0
     return results
 
 
