@@ -384,3 +384,21 @@ def test_a_reconstructor_named_by_file_runs_only_with_allow_code(tmp_path, capsy
 
     image = open_dataset(out)[1]["reconstruction/dose-0.5"]
     assert image.shape == (32, 32) and (image == 0.5).all()
+
+
+def test_scan_arrays_in_memory_are_the_bits_of_a_scan_folder(tmp_path):
+    from simbench.execute.dataset_spec import load_dataset_spec
+    from simbench.execute.scan import SCAN_ARRAYS, ScanPlan, scan_arrays, scan_into
+
+    spec = load_dataset_spec(write_spec(tmp_path))
+    phantom, _ = spec.family.sample(spec.seed, 4)
+    plan = ScanPlan(phantom, spec.scanner, tmp_path / "scan", block_views=7)  # 4 blocks
+    state = scan_into(tmp_path, plan, seed=3, noise=True, identity=("x",))
+    arrays, _ = scan_arrays(plan, seed=3, noise=True, identity=("x",), keep=SCAN_ARRAYS)
+    for name in SCAN_ARRAYS:
+        part = "truth" if name in ("line_integrals", "path_lengths") else "measured"
+        assert np.array_equal(np.load(tmp_path / part / f"{name}.npy"), arrays[name]), name
+    only, _ = scan_arrays(plan, seed=3, noise=True, identity=("x",), keep=("projections",))
+    assert list(only) == ["projections"] and np.array_equal(only["projections"],
+                                                            arrays["projections"])
+    assert state.reference_kev == 60.0

@@ -139,7 +139,8 @@ def load_dataset_spec(path: str | Path, *, allow_code: bool = False) -> DatasetS
 def read_dataset_spec(document: Any, source: str, directory: Path, *,
                       allow_code: bool = False) -> DatasetSpec:
     """Turn a located YAML document into a :class:`DatasetSpec`."""
-    from simbench.scenario.spec import _doses, _grid, _reference_energy, _scanner
+    from simbench.scenario.spec import (_check_dimensions, _doses, _grid, _reference_energy,
+                                        _scanner)
     from simbench.spec import check_integer
 
     if document is None:
@@ -153,9 +154,7 @@ def read_dataset_spec(document: Any, source: str, directory: Path, *,
     description = top.string("description", "")
     family, family_ref = _family(top, directory)
     scanner, scanner_ref = _scanner(top, directory)
-    if family.dimension == 3 and scanner.geometry.dimension == 2:
-        raise top.error("scanner", f"a 2-D scanner cannot scan the 3-D phantom '{family.name}'",
-                        "a scanner with rows (cone, helical, stacked parallel)")
+    _check_dimensions(top, family, scanner)
     samples = check_integer(top.raw("samples"), top.at("samples"), minimum=1,
                             maximum=MAX_SAMPLES)
     seed = top.integer("seed", 0, minimum=0, maximum=2**63 - 1)
