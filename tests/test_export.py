@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 import shutil
 
 import numpy as np
@@ -353,8 +354,9 @@ def test_a_dataset_sample_exports_bit_identical_and_in_hu(tmp_path):
     from simbench.datasets import open_dataset
 
     spec = shipped_files("datasets")["inserts-2d"].read_text(encoding="utf-8")
-    (tmp_path / "two.yaml").write_text(spec.replace("samples: 8", "samples: 2"),
-                                       encoding="utf-8")
+    two = re.sub(r"(?m)^samples: \d+$", "samples: 2", spec)
+    assert two != spec
+    (tmp_path / "two.yaml").write_text(two, encoding="utf-8")
     dataset = tmp_path / "dataset"
     assert main(["generate", str(tmp_path / "two.yaml"), "-o", str(dataset), "--quiet"]) == 0
     _export(dataset, "tiff", tmp_path / "tif", "--truth", "--sample", "1")
