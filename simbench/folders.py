@@ -273,7 +273,7 @@ def _check_replaceable(final: Path, kind: str, where: Where) -> None:
                          f"{MARKER}); refusing to replace it",
                          "a new path, or an existing complete simbench output folder")
     if found != kind:
-        raise InputError(where, f"'{final}' holds a {found} folder, not a {kind} folder; "
+        raise InputError(where, f"'{final}' holds {_a(found)} folder, not {_a(kind)} folder; "
                          "refusing to replace it", f"a new path, or an existing {kind} folder")
 
 
@@ -313,7 +313,7 @@ def verify_folder(folder: str | Path, kind: str, *, checksums: bool = True) -> d
     where = Where(str(folder))
     if not folder.is_dir():
         raise InputError(where, f"no {kind} folder here" if not folder.exists() else
-                         f"not a folder", f"the path of a {kind} folder written by simbench")
+                         f"not a folder", f"the path of {_a(kind)} folder written by simbench")
     path = folder / MARKER
     try:
         marker = json.loads(path.read_text(encoding="utf-8"))
@@ -328,8 +328,8 @@ def verify_folder(folder: str | Path, kind: str, *, checksums: bool = True) -> d
             or not isinstance(marker.get("files"), dict):
         raise InputError(Where(str(path)), "not a simbench marker", f"a complete {kind} folder")
     if marker.get("kind") != kind:
-        raise InputError(where, f"this is a {marker.get('kind')} folder, not a {kind} folder",
-                         f"the path of a {kind} folder")
+        raise InputError(where, f"this is {_a(str(marker.get('kind')))} folder, not "
+                         f"{_a(kind)} folder", f"the path of {_a(kind)} folder")
     listed = marker["files"]
     present = {p.relative_to(folder).as_posix() for p in _files(folder)} - {MARKER}
     for rel in sorted(set(listed) - present):
@@ -352,6 +352,11 @@ def verify_folder(folder: str | Path, kind: str, *, checksums: bool = True) -> d
 # ------------------------------------------------------------------------------------------
 # Helpers
 # ------------------------------------------------------------------------------------------
+
+
+def _a(kind: str) -> str:
+    """``kind`` with its indefinite article: "a scan", "an export"."""
+    return f"{'an' if kind[:1].lower() in 'aeiou' else 'a'} {kind}"
 
 
 def file_sha256(path: Path, block: int = 8 * 2**20) -> str:

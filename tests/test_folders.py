@@ -100,7 +100,7 @@ def test_a_folder_of_another_kind_or_of_the_user_is_never_replaced(tmp_path):
         _write(mine, 1)
     assert (mine / "thesis.tex").read_text() == "years of work"
     _write(tmp_path / "scan", 1)
-    with pytest.raises(InputError, match="not a other folder"):
+    with pytest.raises(InputError, match="not an other folder"):
         with commit_folder(tmp_path / "scan", "other"):
             pass
     a_file = tmp_path / "file"

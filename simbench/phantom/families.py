@@ -440,7 +440,7 @@ class RandomSpec:
         """Draw sample ``index``: the templates painted under and over the fixed objects
         (``fixed``, placed by :func:`simbench.phantom.build.expand`), and the drawn
         parameters."""
-        from simbench.measure.noise import rng_for
+        from simbench.seeding import rng_for
 
         rng = rng_for(root_seed, STREAM, self.name, index)
         return _draw_sample(self, reader, fixed, rng, root_seed, index)
