@@ -46,7 +46,8 @@ def _plan(folder: Path, workers: int):
 
 
 def _rate(executor, workers: int) -> float:
-    """Samples per second of one generation into a fresh folder."""
+    """Samples per second of one generation into a fresh folder (the plan, made once per
+    spec, is made before the clock starts)."""
     from simbench.execute.dataset import generate
 
     with tempfile.TemporaryDirectory() as tmp:
