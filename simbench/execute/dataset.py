@@ -411,10 +411,24 @@ def write_shard(task: ShardTask) -> int:
     return task.stop - task.first
 
 
+#: the largest chunk of a stored array: whole slices or views along the first axis up to this
+CHUNK_BYTES = 2**20
+
+
+def chunk_shape(shape: tuple, itemsize: int) -> tuple:
+    """HDF5 chunks of an array: whole slices (or views) along its first axis, as many as fit
+    in :data:`CHUNK_BYTES` (at least one), so that one slice or view reads one chunk."""
+    if len(shape) < 2:
+        return tuple(max(1, n) for n in shape)
+    per = itemsize * int(np.prod(shape[1:]))
+    return (max(1, min(shape[0], CHUNK_BYTES // max(1, per))),) + tuple(shape[1:])
+
+
 def _write_array(group, key: str, array: np.ndarray, spec) -> None:
     options: dict = {}
     if spec.compression != "none" and array.size > 1:
-        options = {"chunks": True, "shuffle": True, "compression": spec.compression}
+        options = {"chunks": chunk_shape(array.shape, array.itemsize), "shuffle": True,
+                   "compression": spec.compression}
         if spec.compression == "gzip":
             options["compression_opts"] = spec.compression_level
     group.create_dataset(key, data=array, track_times=False, **options)
