@@ -11,7 +11,7 @@ def add_commands(command) -> None:
                             "line integrals and measured data per dose for many samples, in "
                             "HDF5 shards with a manifest of checksums; resumes after an "
                             "interruption.",
-                "simbench generate disc-inserts-2d -o my-dataset --workers 2")
+                "simbench generate inserts-2d -o my-dataset --workers 2")
     p.add_argument("spec", help="dataset spec file or shipped spec name (see docs/datasets.md)")
     p.add_argument("-o", "--output", required=True, metavar="DATASET", help="dataset folder")
     p.add_argument("--workers", default=None, metavar="N",

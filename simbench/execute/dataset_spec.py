@@ -7,7 +7,7 @@ Every error names the spec file, line, column and field, like every other input.
 
 Keys (docs/datasets.md has the full description)::
 
-    name: disc-inserts-train        # required; part of every random stream's identity
+    name: inserts-train             # required; part of every random stream's identity
     description: ...                # optional text
     phantom: my-family.yaml         # required: phantom (family) file or shipped phantom name
     scanner: parallel-bench-2d      # required: shipped name, path, or an inline mapping
