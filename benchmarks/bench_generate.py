@@ -15,6 +15,9 @@ is written as a one-sample shard in a fresh process. The peak resident set above
 before the sample (``VmHWM`` reset through ``/proc/self/clear_refs``) is compared with the
 size of the sample's arrays; the issue's target is under 3x.
 
+**Compile time.** The first sample of the demo spec in a fresh process with an empty numba
+cache, less the second: what a worker pays once when no cache is shared with it.
+
 Run: ``python -m pytest benchmarks/bench_generate.py --benchmark-only -s``
 """
 
@@ -148,3 +151,36 @@ def test_peak_memory_of_a_256_cube_cone_beam_sample(benchmark):
     benchmark.extra_info.update(peak_bytes=peak, array_bytes=arrays, ratio=peak / arrays)
     benchmark.pedantic(lambda: None, rounds=1, iterations=1)
     assert peak < 3 * arrays
+
+
+COMPILE_SCRIPT = r"""
+import dataclasses, tempfile, time
+from pathlib import Path
+from simbench.execute.dataset import DatasetPlan, generate
+from simbench.execute.dataset_spec import load_dataset_spec
+from simbench.execute.executors import InProcess
+
+spec = dataclasses.replace(load_dataset_spec("inserts-2d"), samples=1, samples_per_shard=1)
+
+def once():
+    with tempfile.TemporaryDirectory() as tmp:
+        wall, cpu = time.perf_counter(), time.process_time()
+        plan = DatasetPlan(spec, Path(tmp) / "data")
+        generate(plan, InProcess(), progress=False, say=lambda *_: None)
+        return time.perf_counter() - wall, time.process_time() - cpu
+
+(cold_wall, cold_cpu), (warm_wall, warm_cpu) = once(), once()
+print(cold_wall - warm_wall, cold_cpu - warm_cpu)
+"""
+
+
+def test_generate_compile_time_into_an_empty_cache(benchmark):
+    from support import compile_in_empty_cache
+
+    runs = [compile_in_empty_cache(COMPILE_SCRIPT) for _ in range(2)]
+    walls, cpus = [w for w, _ in runs], [c for _, c in runs]
+    print(f"\ngenerate, first sample of inserts-2d into an empty numba cache: compile "
+          f"{min(walls):.1f} to {max(walls):.1f} s wall, {min(cpus):.1f} to {max(cpus):.1f} s "
+          f"CPU (load {os.getloadavg()[0]:.2f}) {cpu()}")
+    benchmark.extra_info.update(compile_wall_s=walls, compile_cpu_s=cpus)
+    benchmark.pedantic(lambda: None, rounds=1, iterations=1)
