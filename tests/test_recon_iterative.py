@@ -99,3 +99,25 @@ def test_tv_flattens_noise_in_uniform_regions_and_keeps_the_total(problem):
     # the total of the image (the projections' mean over a view, times the view's width) is
     # set by the data, not by the penalty: kept within 1 %
     assert abs(regular.sum() / truth.sum() - 1) < 0.01
+
+
+@pytest.mark.parametrize("method", [sirt, os_sart, cgls])
+def test_an_exact_solution_is_a_fixed_point_of_every_start(problem, method):
+    # consistent data b = A x: from initial = x the residual is zero and no update moves it
+    # (the fixed point of each method's update, by its definition)
+    poses, grid, _, truth = problem
+    A = projector(poses, grid)
+    exact = A.forward(truth)
+    result = method(poses, exact, grid, iterations=3, initial=truth)
+    assert np.max(np.abs(result.image - truth)) < 1e-9 * truth.max()
+
+
+def test_starting_from_fbp_reaches_the_mean_level_sooner(problem):
+    # iterative methods converge slowly at low frequencies (common practice): a few TV
+    # iterations from zero leave the image's mean low, from FBP they start close to it
+    poses, grid, data, truth = problem
+    start = fbp(poses, data, grid)
+    from_zero = tv(poses, data, grid, iterations=10, weight=0.1).image
+    from_fbp = tv(poses, data, grid, iterations=10, weight=0.1, initial=start).image
+    assert abs(from_fbp.mean() - truth.mean()) < abs(from_zero.mean() - truth.mean())
+    assert _rmse(from_fbp, truth) < _rmse(from_zero, truth)

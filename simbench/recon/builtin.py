@@ -19,6 +19,9 @@ _NONNEGATIVE = Option("nonnegative", bool, True, "clip mu at 0 after each update
 _RELAXATION = Option("relaxation", float, 1.0, "relaxation factor lambda",
                      minimum=0.01, maximum=1.99)
 _BIN = Option("bin", int, 0, "energy bin of a photon-counting scan", minimum=0, maximum=7)
+_START = Option("start", str, "zero", "the first image: zero, or fbp (FBP or FDK with the Hann "
+                "filter of the same projections; fewer iterations reach the mean level)",
+                choices=("zero", "fbp"))
 _WATER = Option("water_correction", bool, False,
                 "linearize for water from the scan's own spectrum (beam-hardening precorrection)")
 
@@ -45,6 +48,11 @@ def _projections(acquisition, bin: int = 0, water_correction: bool = False) -> n
 
         data = water_precorrect(data, acquisition.metadata)
     return _select_bin(acquisition, data, bin)
+
+
+def _first_image(acquisition, grid, projections, start: str):
+    """The first image of an iterative method (None: zero)."""
+    return None if start == "zero" else _analytic(acquisition, grid, projections, "hann", 1.0)
 
 
 def _analytic(acquisition, grid, projections, filter, cutoff):
@@ -93,49 +101,57 @@ def fbp_from_counts(acquisition, grid, *, floor, water_correction, filter, cutof
 
 @reconstructor("sirt", options=[
     Option("iterations", int, 100, "iterations", minimum=1, maximum=100000),
-    _RELAXATION, _NONNEGATIVE])
-def sirt(acquisition, grid, *, iterations, relaxation, nonnegative):
+    _RELAXATION, _NONNEGATIVE, _WATER, _START])
+def sirt(acquisition, grid, *, iterations, relaxation, nonnegative, water_correction, start):
     """SIRT on the matched projectors (any geometry)."""
     from simbench.recon.iterative import sirt as run
 
-    return run(acquisition.poses, _projections(acquisition), grid, iterations=iterations,
-               relaxation=relaxation, nonnegative=nonnegative).image
+    data = _projections(acquisition, 0, water_correction)
+    return run(acquisition.poses, data, grid, iterations=iterations, relaxation=relaxation,
+               nonnegative=nonnegative,
+               initial=_first_image(acquisition, grid, data, start)).image
 
 
 @reconstructor("os-sart", options=[
     Option("iterations", int, 10, "passes over all views", minimum=1, maximum=10000),
     Option("subsets", int, 10, "ordered subsets of views", minimum=1, maximum=10000),
-    _RELAXATION, _NONNEGATIVE])
-def os_sart(acquisition, grid, *, iterations, subsets, relaxation, nonnegative):
+    _RELAXATION, _NONNEGATIVE, _WATER, _START])
+def os_sart(acquisition, grid, *, iterations, subsets, relaxation, nonnegative,
+            water_correction, start):
     """OS-SART on the matched projectors (any geometry)."""
     from simbench.recon.iterative import os_sart as run
 
-    return run(acquisition.poses, _projections(acquisition), grid, iterations=iterations,
-               subsets=subsets, relaxation=relaxation, nonnegative=nonnegative).image
+    data = _projections(acquisition, 0, water_correction)
+    return run(acquisition.poses, data, grid, iterations=iterations, subsets=subsets,
+               relaxation=relaxation, nonnegative=nonnegative,
+               initial=_first_image(acquisition, grid, data, start)).image
 
 
 @reconstructor("cgls", options=[
     Option("iterations", int, 30, "iterations (stopping early regularizes)", minimum=1,
-           maximum=10000)])
-def cgls(acquisition, grid, *, iterations):
+           maximum=10000), _WATER, _START])
+def cgls(acquisition, grid, *, iterations, water_correction, start):
     """CGLS least squares on the matched projectors (any geometry)."""
     from simbench.recon.iterative import cgls as run
 
-    return run(acquisition.poses, _projections(acquisition), grid,
-               iterations=iterations).image
+    data = _projections(acquisition, 0, water_correction)
+    return run(acquisition.poses, data, grid, iterations=iterations,
+               initial=_first_image(acquisition, grid, data, start)).image
 
 
 @reconstructor("tv", options=[
     Option("iterations", int, 200, "primal-dual iterations", minimum=1, maximum=100000),
     Option("weight", float, 1.0, "weight of the total variation", minimum=0.0,
            maximum=1e6),
-    _NONNEGATIVE])
-def tv(acquisition, grid, *, iterations, weight, nonnegative):
+    _NONNEGATIVE, _WATER, _START])
+def tv(acquisition, grid, *, iterations, weight, nonnegative, water_correction, start):
     """Total-variation regularized least squares (Chambolle-Pock), any geometry."""
     from simbench.recon.iterative import tv as run
 
-    return run(acquisition.poses, _projections(acquisition), grid, iterations=iterations,
-               weight=weight, nonnegative=nonnegative).image
+    data = _projections(acquisition, 0, water_correction)
+    return run(acquisition.poses, data, grid, iterations=iterations, weight=weight,
+               nonnegative=nonnegative,
+               initial=_first_image(acquisition, grid, data, start)).image
 
 
 BUILTINS: list = [fbp, fdk, fbp_from_counts, sirt, os_sart, cgls, tv]

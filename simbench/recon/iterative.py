@@ -54,8 +54,15 @@ def _inverse(values: np.ndarray) -> np.ndarray:
     return out
 
 
+def _first(initial, shape: tuple) -> np.ndarray:
+    """The first image of an iteration: zero, or a float64 copy of ``initial``."""
+    if initial is None:
+        return np.zeros(shape)
+    return np.array(initial, dtype=np.float64).reshape(shape)
+
+
 def sirt(poses: Poses, projections, grid: ImageGrid, *, iterations: int = 100,
-         relaxation: float = 1.0, nonnegative: bool = True) -> IterativeResult:
+         relaxation: float = 1.0, nonnegative: bool = True, initial=None) -> IterativeResult:
     """Simultaneous iterative reconstruction technique.
 
     Parameters
@@ -69,6 +76,10 @@ def sirt(poses: Poses, projections, grid: ImageGrid, *, iterations: int = 100,
         lambda in (0, 2).
     nonnegative : bool
         Clip mu at 0 after each update.
+    initial : array, ``grid.image_shape``, optional
+        The first image (default zero), e.g. an FBP of the same projections: iterative methods
+        converge slowly at low spatial frequencies, and a few iterations from zero leave the
+        mean level low.
 
     Returns
     -------
@@ -91,7 +102,7 @@ def sirt(poses: Poses, projections, grid: ImageGrid, *, iterations: int = 100,
     b = _data(projections, poses)
     row = _inverse(A.forward(np.ones(A.image_shape)))
     col = _inverse(A.back(np.ones(A.projection_shape)))
-    x = np.zeros(A.image_shape)
+    x = _first(initial, A.image_shape)
     result = IterativeResult(x)
     for _ in range(iterations):
         r = b - A.forward(x)
@@ -106,8 +117,8 @@ def sirt(poses: Poses, projections, grid: ImageGrid, *, iterations: int = 100,
 
 
 def os_sart(poses: Poses, projections, grid: ImageGrid, *, iterations: int = 10,
-            subsets: int = 10, relaxation: float = 1.0, nonnegative: bool = True
-            ) -> IterativeResult:
+            subsets: int = 10, relaxation: float = 1.0, nonnegative: bool = True,
+            initial=None) -> IterativeResult:
     """Ordered-subset simultaneous algebraic reconstruction technique.
 
     Parameters
@@ -116,7 +127,7 @@ def os_sart(poses: Poses, projections, grid: ImageGrid, *, iterations: int = 10,
         Passes over all views.
     subsets : int
         Views are split into this many interleaved subsets (view s, s + n, s + 2n...).
-    relaxation, nonnegative
+    relaxation, nonnegative, initial
         As in :func:`sirt`.
 
     Notes
@@ -140,8 +151,8 @@ def os_sart(poses: Poses, projections, grid: ImageGrid, *, iterations: int = 10,
         parts.append((views, A, _inverse(A.forward(np.ones(A.image_shape))),
                       _inverse(A.back(np.ones(A.projection_shape)))))
     full = _projector(poses, grid)
-    x = np.zeros(full.image_shape)
-    result = IterativeResult(x, [float(np.linalg.norm(b))])
+    x = _first(initial, full.image_shape)
+    result = IterativeResult(x, [float(np.linalg.norm(b - full.forward(x)))])
     for _ in range(iterations):
         for views, A, row, col in parts:
             r = b[views] - A.forward(x)
@@ -153,9 +164,15 @@ def os_sart(poses: Poses, projections, grid: ImageGrid, *, iterations: int = 10,
     return result
 
 
-def cgls(poses: Poses, projections, grid: ImageGrid, *, iterations: int = 30
-         ) -> IterativeResult:
+def cgls(poses: Poses, projections, grid: ImageGrid, *, iterations: int = 30,
+         initial=None) -> IterativeResult:
     """Conjugate gradients on the normal equations (least squares), no constraint.
+
+    Parameters
+    ----------
+    initial : array, optional
+        As in :func:`sirt`: the search starts from it (the Krylov subspaces grow from its
+        residual).
 
     Notes
     -----
@@ -170,8 +187,8 @@ def cgls(poses: Poses, projections, grid: ImageGrid, *, iterations: int = 30
     """
     A = _projector(poses, grid)
     b = _data(projections, poses)
-    x = np.zeros(A.image_shape)
-    r = b.copy()
+    x = _first(initial, A.image_shape)
+    r = b - A.forward(x) if initial is not None else b.copy()
     s = A.back(r)
     p = s.copy()
     gamma = float(np.sum(s * s))
@@ -216,7 +233,7 @@ def _divergence(g: np.ndarray) -> np.ndarray:
 
 
 def tv(poses: Poses, projections, grid: ImageGrid, *, iterations: int = 200,
-       weight: float = 1.0, nonnegative: bool = True) -> IterativeResult:
+       weight: float = 1.0, nonnegative: bool = True, initial=None) -> IterativeResult:
     """Total-variation regularized least squares by the preconditioned primal-dual method.
 
     Parameters
@@ -226,6 +243,8 @@ def tv(poses: Poses, projections, grid: ImageGrid, *, iterations: int = 200,
         lambda, the weight of the isotropic total variation (in the units of ``A x - b``
         per 1/mm of image step).
     nonnegative : bool
+    initial : array, optional
+        As in :func:`sirt`.
 
     Notes
     -----
@@ -260,7 +279,7 @@ def tv(poses: Poses, projections, grid: ImageGrid, *, iterations: int = 200,
     mu = max(float(columns.mean()) / (2.0 * ndim), 1e-12)
     radius = weight / mu
     tau = 1.0 / (columns + 2.0 * ndim * mu)
-    x = np.zeros(A.image_shape)
+    x = _first(initial, A.image_shape)
     x_bar = x.copy()
     p = np.zeros(A.projection_shape)
     q = np.zeros((ndim,) + x.shape)
