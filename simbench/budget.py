@@ -112,3 +112,48 @@ def check_bytes(need: float, where: Where | str, what: str, valid: str) -> None:
                          f"budget of {format_bytes(budget)} ({origin})",
                          f"{valid}, or a larger budget with --memory-budget or "
                          f"{ENVIRONMENT_VARIABLE}")
+
+
+def free_disk_bytes(path) -> tuple[int | None, "Path"]:
+    """Free bytes on the disk that holds ``path`` (or its nearest existing parent).
+
+    Returns
+    -------
+    (int or None, Path)
+        The free bytes (None where the file system does not say) and the folder asked.
+    """
+    import shutil
+    from pathlib import Path
+
+    probe = Path(path)
+    while not probe.exists() and probe != probe.parent:
+        probe = probe.parent
+    try:
+        return shutil.disk_usage(probe).free, probe
+    except OSError:
+        return None, probe
+
+
+def check_disk(need: float, out, where: Where | str, what: str, valid: str) -> None:
+    """Refuse, with one line, outputs estimated to need more disk than is free where ``out``
+    is to be written (checked before any work, so that a full disk is said up front).
+
+    Parameters
+    ----------
+    need : float
+        Estimated bytes written.
+    out : path
+        The output's destination (need not exist yet).
+    where : Where or str
+    what : str
+        What is written, e.g. ``"the scan's outputs"``.
+    valid : str
+        What would fit, e.g. ``"fewer views"``; "an output folder on a larger disk" is added.
+    """
+    from pathlib import Path
+
+    free, probe = free_disk_bytes(Path(out).parent)
+    if free is not None and need > free:
+        raise InputError(where, f"{what} would need about {format_bytes(need)} of disk and "
+                         f"'{probe}' has {format_bytes(free)} free",
+                         f"{valid}, or an output folder on a larger disk")

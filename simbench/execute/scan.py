@@ -72,9 +72,7 @@ def check_scan_cost(poses, n_sub: int, n_materials: int, n_out: int, step: int,
     line integrals; the folder is built beside an existing one before replacing it, so both
     must fit.
     """
-    import shutil
-
-    from simbench.budget import check_bytes, format_bytes
+    from simbench.budget import check_bytes, check_disk
 
     cells = poses.n_rows * poses.n_cols
     where = Where(source, field="geometry")
@@ -83,17 +81,7 @@ def check_scan_cost(poses, n_sub: int, n_materials: int, n_out: int, step: int,
                 f"cells, {n_sub} sub-rays, {n_materials} materials)",
                 "fewer rows or columns, or fewer focal-spot and aperture samples")
     output_bytes = float(poses.n_views) * cells * (8.0 * n_out + 8.0 * (n_materials + 1))
-    probe = out.parent
-    while not probe.exists() and probe != probe.parent:
-        probe = probe.parent
-    try:
-        free = shutil.disk_usage(probe).free
-    except OSError:
-        return
-    if output_bytes > free:
-        raise InputError(where, f"the scan's outputs would need about {format_bytes(output_bytes)} "
-                         f"of disk and '{probe}' has {format_bytes(free)} free",
-                         "fewer views, rows or columns, or an output folder on a larger disk")
+    check_disk(output_bytes, out, where, "the scan's outputs", "fewer views, rows or columns")
 
 
 def scan_identity(phantom, scanner, realization: int = 0) -> tuple:

@@ -192,9 +192,7 @@ def check_cost(source, items: list, out: Path) -> None:
     (NXtomo, 64 MiB, twice). Disk: the exported arrays at their source size, plus a page of
     DICOM header per slice, against the free space where the folder is built.
     """
-    import shutil
-
-    from simbench.budget import check_bytes, format_bytes
+    from simbench.budget import check_bytes, check_disk
     from simbench.export.nxtomo import BYTES_PER_BLOCK
 
     sizes = {rel: source.size(rel) for item in items for rel in item.files.values()}
@@ -205,18 +203,8 @@ def check_cost(source, items: list, out: Path) -> None:
                 "exporting one slice or block of views", "a smaller image or detector")
     need = float(sum(sizes.values())) + 2048.0 * (source.grid.shape[0] * len(items)
                                                   if source.grid is not None else len(items))
-    probe = out.parent
-    while not probe.exists() and probe != probe.parent:
-        probe = probe.parent
-    try:
-        free = shutil.disk_usage(probe).free
-    except OSError:
-        return
-    if need > free:
-        raise InputError(_cli("-o"), f"the export would need about {format_bytes(need)} of disk "
-                         f"and '{probe}' has {format_bytes(free)} free",
-                         "fewer items (--algorithm, --dose, --realization), or an output "
-                         "folder on a larger disk")
+    check_disk(need, out, _cli("-o"), "the export", "fewer items (--algorithm, --dose, "
+               "--realization)")
 
 
 # ------------------------------------------------------------------------------------------
