@@ -518,12 +518,11 @@ def _warn_if_disk_short(plan: DatasetPlan, samples: int) -> None:
     from simbench.budget import format_bytes
     from simbench.errors import warn_input
 
+    from simbench.budget import free_disk_bytes
+
     need = samples * plan.sample_bytes(len(plan.materials_example))
-    try:
-        free = shutil.disk_usage(plan.out).free
-    except OSError:
-        return
-    if need > free:
+    free, _ = free_disk_bytes(plan.out)
+    if free is not None and need > free:
         warn_input(plan.spec.at("samples"), f"{samples} samples are {format_bytes(need)} "
                    f"before compression and '{plan.out}' has {format_bytes(free)} free; if "
                    "the disk fills, the shard being written is removed and a rerun resumes")
