@@ -180,7 +180,7 @@ def local_processes(n_workers: int, threads: int | None = None) -> DaskExecutor:
     environment = {"NUMBA_NUM_THREADS": str(threads), "OMP_NUM_THREADS": "1"}
     with dask.config.set({"distributed.scheduler.allowed-failures": 1}):
         cluster = LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True,
-                               dashboard_address=None, silence_logs=logging.ERROR,
+                               dashboard_address=":0", silence_logs=logging.ERROR,
                                env=environment)
         client = Client(cluster)
     return DaskExecutor(client, cluster, f"on {n_workers} local worker process"
