@@ -6,6 +6,7 @@ file runs in about a minute on two busy cores, Dask clusters included.
 
 from __future__ import annotations
 
+import contextlib
 import errno
 import json
 import os
@@ -243,6 +244,33 @@ def test_unreachable_scheduler_is_one_line_within_30_s(tmp_path, capsys):
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "--scheduler" in err and "tcp://127.0.0.1:9" in err
     assert not (tmp_path / "data").exists()
+
+
+def test_a_server_that_is_not_a_dask_scheduler_is_one_line(tmp_path, capsys):
+    # a web server (or anything else) at the address: its reply is not Dask's protocol
+    import socket
+    import threading
+
+    server = socket.socket()
+    server.bind(("127.0.0.1", 0))
+    server.listen()
+
+    def answer() -> None:
+        with contextlib.suppress(OSError):
+            while True:
+                connection, _ = server.accept()
+                connection.sendall(b"HTTP/1.1 400 Bad Request\r\n\r\n" * 4)
+                connection.close()
+
+    threading.Thread(target=answer, daemon=True).start()
+    address = f"tcp://127.0.0.1:{server.getsockname()[1]}"
+    try:
+        assert main(["generate", str(write_spec(tmp_path)), "-o", str(tmp_path / "data"),
+                     "--scheduler", address]) == 2
+    finally:
+        server.close()
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "is not a Dask scheduler" in err and address in err
 
 
 def test_a_full_disk_leaves_no_half_written_sample(reference, tmp_path, monkeypatch, capsys):

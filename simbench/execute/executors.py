@@ -209,7 +209,10 @@ def connect(address: str, timeout_s: float = CONNECT_TIMEOUT_S) -> DaskExecutor:
     logging.getLogger("distributed").setLevel(logging.CRITICAL)
     try:
         client = Client(address, timeout=f"{timeout_s:g}s")
-    except (OSError, TimeoutError, ValueError) as exc:
+    except MemoryError:  # a server that is not Dask's: its first bytes read as a frame size
+        raise InputError(where, f"the server at {address} is not a Dask scheduler (its reply "
+                         "is not the Dask protocol)", _SCHEDULER_VALID) from None
+    except Exception as exc:  # noqa: BLE001 - whatever fails on the way, the address is unusable
         reason = " ".join(str(exc).split())[:160] or type(exc).__name__
         raise InputError(where, f"no Dask scheduler answered at {address} within "
                          f"{timeout_s:g} s ({reason})", _SCHEDULER_VALID) from None
