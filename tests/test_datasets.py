@@ -210,7 +210,7 @@ def test_more_samples_later_reuses_the_shards_already_made(reference, tmp_path, 
     said = capsys.readouterr().out
     # shard 1 held sample 2 only; with 6 samples it holds 2 and 3, so it is made again
     assert said.startswith("reused 1 shard (2 samples), wrote 2 (4 samples)"), said
-    assert "removed 1 damaged" in said
+    assert "removed 1 made for the old sample count" in said
     assert checksums(out) == checksums(reference)
 
 

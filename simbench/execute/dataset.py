@@ -497,19 +497,22 @@ def generate(plan: DatasetPlan, executor, *, start_over: bool = False, progress:
     reused_samples = sum(b - a for k, a, b in plan.shards if shard_name(k) in reused)
     parts = []
     if reused:
-        parts.append(f"reused {len(reused)} shard{'s' if len(reused) != 1 else ''} "
-                     f"({reused_samples} samples)")
-    parts.append(f"wrote {len(todo)}" + ("" if reused else
-                                         f" shard{'s' if len(todo) != 1 else ''}")
-                 + f" ({samples_todo} samples) {executor.description}")
+        parts.append(f"reused {_count(len(reused), 'shard')} "
+                     f"({_count(reused_samples, 'sample')})")
+    parts.append(f"wrote {len(todo) if reused else _count(len(todo), 'shard')} "
+                 f"({_count(samples_todo, 'sample')}) {executor.description}")
     parts.extend(f"removed {n} {what}" for what, n in removed.items() if n)
     seconds = time.perf_counter() - started
     say(", ".join(parts))
-    say(f"wrote {out}/ — {plan.spec.samples} samples in {len(plan.shards)} shards "
-        f"({_folder_size(out / SHARDS) / 2**20:.1f} MiB) in {seconds:.1f} s; check it with "
-        f"'simbench verify {out}'")
+    say(f"wrote {out}/ — {_count(plan.spec.samples, 'sample')} in "
+        f"{_count(len(plan.shards), 'shard')} ({_folder_size(out / SHARDS) / 2**20:.1f} MiB) "
+        f"in {seconds:.1f} s; check it with 'simbench verify {out}'")
     return {"reused": len(reused), "written": len(todo), "removed": dict(removed),
             "samples_written": samples_todo, "seconds": seconds}
+
+
+def _count(n: int, noun: str) -> str:
+    return f"{n} {noun}{'' if n == 1 else 's'}"
 
 
 def _warn_if_disk_short(plan: DatasetPlan, samples: int) -> None:
@@ -566,7 +569,8 @@ def _inspect_shards(plan: DatasetPlan) -> tuple[set, dict]:
     shards = plan.out / SHARDS
     planned = {shard_name(k): (k, a, b) for k, a, b in plan.shards}
     reused: set = set()
-    removed = {"partial": 0, "damaged": 0, "beyond the samples asked for": 0}
+    removed = {"partial": 0, "damaged": 0, "beyond the samples asked for": 0,
+               "made for the old sample count": 0}
     for path in sorted(shards.iterdir()):
         name = path.name
         if name.startswith("."):  # staging or aside folders, lock files of killed runs
@@ -585,11 +589,13 @@ def _inspect_shards(plan: DatasetPlan) -> tuple[set, dict]:
             info = json.loads((path / SHARD_INFO).read_text(encoding="utf-8"))
         except (InputError, OSError, ValueError):
             info = None
-        if info == _shard_identity(plan, k, a, b):
+        expected = _shard_identity(plan, k, a, b)
+        if info == expected:
             reused.add(name)
-        else:
-            removed["damaged"] += 1
-            _remove(path)
+            continue
+        resized = isinstance(info, dict) and dict(info, samples=expected["samples"]) == expected
+        removed["made for the old sample count" if resized else "damaged"] += 1
+        _remove(path)
     return reused, removed
 
 
