@@ -388,15 +388,26 @@ def _always_dies(flag: str) -> int:
     os._exit(1)
 
 
-def test_a_task_whose_worker_dies_is_run_once_more_and_a_second_death_is_one_line(tmp_path):
+def _refuses(name: str) -> int:
+    from simbench.errors import InputError, Where
+
+    raise InputError(Where(name, 3, 4, "field"), "is bad", "something good")
+
+
+def test_a_task_whose_worker_dies_is_run_once_more_and_errors_come_back_as_one_line(
+        tmp_path):
     from simbench.errors import InputError
     from simbench.execute.executors import local_processes
 
     with local_processes(1) as executor:
         flag = str(tmp_path / "flag")
         assert list(executor.map_unordered(_dies_first_time, [flag])) == [(flag, 7)]
-        with pytest.raises(InputError, match="died twice"):
+        with pytest.raises(InputError, match="died each time it was tried"):
             list(executor.map_unordered(_always_dies, ["shard-00003"]))
+        # a bad-input error raised in a worker comes back as the same one line
+        with pytest.raises(InputError) as refused:
+            list(executor.map_unordered(_refuses, ["spec.yaml"]))
+        assert str(refused.value) == "spec.yaml:3:4: field: is bad (valid: something good)"
 
 
 def test_a_reconstructor_named_by_file_runs_only_with_allow_code(tmp_path, capsys):

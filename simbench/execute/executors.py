@@ -23,6 +23,8 @@ or the worker. Three executors:
   within :data:`CONNECT_TIMEOUT_S` seconds is one line of error. The cluster's own settings
   (threads, retries after a worker's death) apply.
 
+A task's exception reaches the caller unchanged (a bad-input error keeps its one line).
+
 Dask is the engine: this module only starts or connects to it and turns its failures into
 one-line messages.
 """
@@ -99,14 +101,14 @@ class DaskExecutor:
         """Submit every task; yield ``(task, result)`` as each finishes.
 
         A task's exception is raised here unchanged (the rest are cancelled); a task whose
-        worker died twice is one line naming it (``label(task)``).
+        worker died each time it was tried is one line naming it (``label(task)``).
         """
         from distributed import as_completed
         from distributed.scheduler import KilledWorker
 
         futures = {}
         for task in tasks:
-            future = self.client.submit(function, task, pure=False)
+            future = self.client.submit(_call, function, task, pure=False)
             futures[future] = task
         try:
             for future in as_completed(list(futures)):
@@ -115,9 +117,10 @@ class DaskExecutor:
                     result = future.result()
                 except KilledWorker:
                     raise InputError(Where(label(task)), "the worker running this task died "
-                                     "twice (killed, or out of memory); finished work is kept",
-                                     "run the command again to resume, with fewer --workers "
-                                     "or a smaller --memory-budget") from None
+                                     "each time it was tried (killed, or out of memory); "
+                                     "finished work is kept", "run the command again to "
+                                     "resume, with fewer --workers or a smaller "
+                                     "--memory-budget") from None
                 yield task, result
                 future.release()
         finally:
@@ -138,6 +141,21 @@ class DaskExecutor:
 
     def __exit__(self, *exc) -> None:
         self.close()
+
+
+class _TaskInputError(InputError):
+    """An :class:`InputError` that survives pickling on its way back from a worker."""
+
+    def __reduce__(self):
+        return (_TaskInputError, (self.where, self.problem, self.valid))
+
+
+def _call(function: Callable, task: Any) -> Any:
+    """Run one task on a worker; a bad-input error comes back as the same one line."""
+    try:
+        return function(task)
+    except InputError as error:
+        raise _TaskInputError(error.where, error.problem, error.valid) from None
 
 
 def _distributed(option: str):
