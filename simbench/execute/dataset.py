@@ -735,10 +735,10 @@ def verify_dataset(folder: str | Path) -> tuple[list[str], str]:
     if record.get("state") != "complete":
         problems.append(f"{folder / RECORD}: the dataset is incomplete (generation was "
                         "interrupted); run simbench generate again to finish it")
-        return problems, "incomplete"
+        return problems, f"{folder}: incomplete"
     manifest = folder / MANIFEST
     if not manifest.is_file():
-        return [f"{manifest}: missing"], "damaged"
+        return [f"{manifest}: missing"], f"{folder}: 1 problem found"
     if file_sha256(manifest) != record.get("manifest_sha256"):
         problems.append(f"{manifest}: SHA-256 differs from {RECORD} (altered after writing)")
     shards = record.get("shards", {})
