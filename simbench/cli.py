@@ -230,7 +230,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     from simbench.scenario import load_scenario
 
     scenario = load_scenario(resolve(args.scenario, "scenarios"))
-    from simbench.cli_scale import _workers as workers_option
+    from simbench.cli_scale import workers_option
 
     run_scenario(scenario, Path(args.output), allow_code=args.allow_code,
                  progress=not args.quiet and sys.stderr.isatty(), reuse=not args.fresh,
@@ -296,6 +296,7 @@ def cmd_list(args: argparse.Namespace) -> int:
     print("shipped phantoms:  " + ", ".join(shipped_files("phantoms")))
     print("shipped scanners:  " + ", ".join(shipped_files("scanners")))
     print("shipped scenarios: " + ", ".join(shipped_files("scenarios")))
+    print("shipped dataset specs: " + ", ".join(shipped_files("datasets")))
     print("catalogue materials: " + ", ".join(material_names()))
     return 0
 
@@ -552,7 +553,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("-o", "--output", required=True, metavar="FILE.png", help="output PNG")
     p.set_defaults(run=cmd_spectrum)
 
-    p = command("list", "List the shipped phantoms and scanners and the catalogue materials.")
+    p = command("list", "List the shipped phantoms, scanners, scenarios and dataset specs, and the "
+                        "catalogue materials.")
     p.set_defaults(run=cmd_list)
 
     p = command("demo", "Draw, trace, scan and reconstruct shipped phantoms into a folder, and "

@@ -33,7 +33,7 @@ def add_commands(command) -> None:
     p.set_defaults(run=cmd_verify)
 
 
-def _workers(value: str | None) -> int | None:
+def workers_option(value: str | None) -> int | None:
     from simbench.errors import InputError, Where
     from simbench.execute.executors import MAX_LOCAL_WORKERS
 
@@ -58,7 +58,7 @@ def cmd_generate(args) -> int:
     from simbench.execute.dataset_spec import load_dataset_spec
     from simbench.execute.executors import open_executor
 
-    workers = _workers(args.workers)
+    workers = workers_option(args.workers)
     spec = load_dataset_spec(args.spec, allow_code=args.allow_code)
     plan = DatasetPlan(spec, Path(args.output), workers=workers or 1)
     with open_executor(workers=workers, scheduler=args.scheduler) as executor:

@@ -67,6 +67,11 @@ class InputError(ValueError):
             text += f" (valid: {valid})"
         super().__init__(" ".join(text.split()))
 
+    def __reduce__(self):
+        """Pickle by the constructor's arguments, so the error crosses to and from worker
+        processes (an exception is otherwise rebuilt from ``args``, the text alone)."""
+        return (type(self), (self.where, self.problem, self.valid))
+
 
 class InputWarning(UserWarning):
     """A doubtful but usable input, e.g. a detector that truncates the object."""
