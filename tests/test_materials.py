@@ -297,3 +297,17 @@ def test_attenuation_includes_coherent_scattering():
     got = mass_attenuation_cm2_g(water, energies)
     assert got == pytest.approx(with_coherent, rel=1e-4)  # catalogue fractions vs NIST's
     assert np.all(got > np.array(without) * 1.01)  # Rayleigh adds > 1 % at these energies
+
+
+def test_materials_differing_only_in_density_scale_exactly():
+    # mu = (mu/rho) rho (the definition of the mass attenuation coefficient): two densities of
+    # one composition give mu in the ratio of the densities (to float64 rounding)
+    import dataclasses
+
+    from simbench.materials import get_material, mu_table
+
+    water = get_material("water")
+    denser = dataclasses.replace(water, name="denser water", density_g_cm3=1.25)
+    energies = np.linspace(20.0, 140.0, 7)
+    mu = mu_table([water, denser], energies)
+    np.testing.assert_allclose(mu[1] / mu[0], 1.25 / water.density_g_cm3, rtol=1e-14)

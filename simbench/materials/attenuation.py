@@ -43,6 +43,8 @@ MAX_MU_PER_MM = 1.0e5
 _CACHE_SIZE = 32
 _mu_cache: "OrderedDict[tuple, np.ndarray]" = OrderedDict()
 _mu_cache_lock = threading.Lock()
+_MASS_CACHE_SIZE = 256
+_mass_cache: "OrderedDict[tuple, np.ndarray]" = OrderedDict()
 
 
 def _place(where: "Where | str | None", field: str) -> Where:
@@ -88,6 +90,25 @@ def _composition(spec: MaterialSpec) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _mass_coefficient(spec: MaterialSpec, energies: np.ndarray, table) -> np.ndarray:
+    """sum_i w_i table(Z_i, E) for a material's composition, cached on the composition alone:
+    materials that differ only in density (a random family's drawn contrasts) share it."""
+    if not spec.mass_fractions:
+        return _mass_coefficient_of(spec, energies, table)
+    key = (spec.mass_fractions, table, energies.tobytes())
+    with _mu_cache_lock:
+        cached = _mass_cache.get(key)
+        if cached is not None:
+            _mass_cache.move_to_end(key)
+    if cached is None:
+        cached = _mass_coefficient_of(spec, energies, table)
+        with _mu_cache_lock:
+            _mass_cache[key] = cached
+            while len(_mass_cache) > _MASS_CACHE_SIZE:
+                _mass_cache.popitem(last=False)
+    return cached.copy()
+
+
+def _mass_coefficient_of(spec: MaterialSpec, energies: np.ndarray, table) -> np.ndarray:
     z, w = _composition(spec)
     per_element = np.asarray(table(z, energies), dtype=np.float64)  # (nZ, E)
     if not np.all(np.isfinite(per_element)) or np.any(per_element <= 0):
