@@ -164,7 +164,7 @@ def _distributed(option: str):
         import distributed
     except ImportError:
         raise InputError(Where("<command line>", field=option), f"{option} needs Dask "
-                         "distributed, which is not installed", "pip install 'simbench[dask]', "
+                         "distributed, which is not installed", "pip install 'dask[distributed]', "
                          "or leave the option out to run in this process") from None
     return distributed
 
