@@ -491,7 +491,8 @@ def _tasks(staging: Path, plan: RunPlan, truth: _Truth, ledger, token: str) -> l
             if known is not None and not todo:
                 continue
             first = (dose_label(dose), r) == plan.first
-            tasks.append(RunTask(token, str(scenario.source), plan.allow_code, str(staging),
+            tasks.append(RunTask(token, str(Path(scenario.source).resolve()), plan.allow_code,
+                                 str(staging.resolve()),
                                  dose, r, known is None, first and not truth.reused, todo,
                                  truth.energy, keys[f"measured/{label}"],
                                  None if known is None else known["metadata"]))
