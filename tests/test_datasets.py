@@ -344,6 +344,10 @@ def test_bad_spec_keys_are_located_one_line_errors(tmp_path, capsys, extra, plac
     ("compression: gzip", "compression: lzf\ncompression_level: 2", "compression_level"),
     ("phantom: random-inserts", "phantom: no-such-phantom", "phantom"),
     ("doses: [1.0, 0.5]", "doses: [1.0, 1.0]", "doses"),
+    # a fan beam whose source passes inside the grid: refused at planning, before the folder
+    ("geometry: {type: parallel, dimension: 2, columns: 40, column_pitch: 10 mm, views: 24,\n"
+     "             arc: 180 deg}", "geometry: {type: fan, sid: 150 mm, sdd: 300 mm, columns: 40, "
+     "column_pitch: 10 mm, views: 24, arc: 360 deg}", "grid"),
 ])
 def test_bad_spec_values_name_the_field(tmp_path, capsys, old, new, place):
     spec = write_spec(tmp_path)
@@ -351,6 +355,7 @@ def test_bad_spec_values_name_the_field(tmp_path, capsys, old, new, place):
     assert main(["generate", str(spec), "-o", str(tmp_path / "data")]) == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and f"spec.yaml:" in err and f": {place}" in err, err
+    assert not (tmp_path / "data").exists()
 
 
 @pytest.mark.parametrize("argv, words", [

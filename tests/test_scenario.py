@@ -125,6 +125,9 @@ BAD = [
      "contrast: high}\n", "detectability_task.contrast", "not a contrast"),
     ("task diameter out of range", SMALL + "detectability_task: {diameter: 5 m, "
      "contrast: 10 HU}\n", "detectability_task.diameter", "out of range"),
+    ("grid beyond the source's path", SMALL.replace("size: 144, voxel_size: 2.5 mm",
+                                                    "size: 400, voxel_size: 4 mm"),
+     "grid", "source's path"),
     ("task without a contrast", SMALL + "detectability_task: {diameter: 5 mm}\n",
      "detectability_task", "contrast"),
 ]

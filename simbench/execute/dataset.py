@@ -121,12 +121,14 @@ class DatasetPlan:
     """
 
     def __init__(self, spec, out: Path, *, workers: int = 1):
-        from simbench.execute.reconstruct import check_reconstruction_memory, grid_from_options
+        from simbench.execute.reconstruct import (check_grid_inside_orbit,
+                                                  check_reconstruction_memory, grid_from_options)
 
         self.spec, self.out = spec, Path(out)
         self.poses = spec.scanner.geometry.poses()
         g = spec.grid
         self.grid = grid_from_options(self.poses, g["size"], g["voxel_size"], g["centre"])
+        check_grid_inside_orbit(self.poses, self.grid, spec.at("grid"))
         phantom, _ = spec.family.sample(spec.seed, 0)
         self.materials_example = [m.name for m in phantom.materials]
         self.reference_energy_kev = self._reference_energy(phantom)

@@ -104,6 +104,24 @@ def grid_from_options(poses: Poses, size: str | None, voxel: str | None,
                      tuple(float(v) for v in middle), dim)
 
 
+def check_grid_inside_orbit(poses: Poses, grid: ImageGrid, where: Where) -> None:
+    """Refuse, for a divergent beam, a grid whose corners reach the source's path: voxels at or
+    beyond the source are seen from behind it, and no method can reconstruct them.
+
+    The reach is the largest distance of a voxel centre of the grid from the z axis; the
+    orbit's radius the smallest distance of a source position from that axis.
+    """
+    if poses.parallel:
+        return
+    xs, ys = grid.axis_mm("x"), grid.axis_mm("y")
+    reach = math.hypot(max(abs(xs[0]), abs(xs[-1])), max(abs(ys[0]), abs(ys[-1])))
+    orbit = float(np.min(np.hypot(poses.source[:, 0], poses.source[:, 1])))
+    if reach >= orbit:
+        raise InputError(where, f"the grid reaches {reach:.6g} mm from the axis, at or beyond "
+                         f"the source's path ({orbit:.6g} mm from it)",
+                         "a smaller grid or voxel size, inside the source's path")
+
+
 def check_reconstruction_cost(acquisition, grid: ImageGrid) -> None:
     """Refuse a reconstruction of ``acquisition`` on ``grid`` over the memory budget
     (:func:`check_reconstruction_memory`)."""

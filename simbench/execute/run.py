@@ -111,7 +111,8 @@ class RunPlan:
     """Everything a run will do, checked and estimated before any work."""
 
     def __init__(self, scenario, out: Path, *, allow_code: bool):
-        from simbench.execute.reconstruct import check_reconstruction_memory, grid_from_options
+        from simbench.execute.reconstruct import (check_grid_inside_orbit,
+                                                  check_reconstruction_memory, grid_from_options)
         from simbench.execute.scan import ScanPlan
 
         self.scenario, self.out = scenario, out
@@ -122,6 +123,8 @@ class RunPlan:
         self.poses = first.poses
         g = scenario.grid
         self.grid = grid_from_options(self.poses, g["size"], g["voxel_size"], g["centre"])
+        check_grid_inside_orbit(self.poses, self.grid,
+                                scenario.wheres.get("grid", Where(scenario.source)))
         check_reconstruction_memory(float(np.prod(self.poses.projection_shape)), self.grid)
         from simbench.budget import check_bytes
 
