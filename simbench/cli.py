@@ -618,8 +618,9 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     except (Interrupted, KeyboardInterrupt) as stop:
         signum = getattr(stop, "signum", signal.SIGINT)
-        sys.stderr.write(f"simbench: stopped by {signal.Signals(signum).name}; outputs in "
-                         "progress were removed, finished ones are whole\n")
+        sys.stderr.write(f"simbench: stopped by {signal.Signals(signum).name}; nothing "
+                         "half-written was put in place (a run resumes from its finished work "
+                         "when started again)\n")
         return 128 + int(signum)
     except OSError as exc:
         place = exc.filename if exc.filename is not None else "<output>"

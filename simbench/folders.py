@@ -95,7 +95,9 @@ def commit_folder(final: str | Path, kind: str, *, say: Callable[[str], None] = 
         The name of a ledger file. A staging folder left by an interrupted run that holds this
         file is adopted as the new staging folder (the newest one, if several) instead of being
         removed: the caller keeps what its ledger proves whole and deletes the rest (see
-        :mod:`simbench.execute.reuse`).
+        :mod:`simbench.execute.reuse`). Likewise, when the block fails or is interrupted
+        (Ctrl-C, SIGTERM, an error) after the ledger was written, the staging folder is kept
+        for the next run instead of being deleted.
 
     Yields
     ------
@@ -120,6 +122,7 @@ def commit_folder(final: str | Path, kind: str, *, say: Callable[[str], None] = 
         _clean_stale(final, say, spare=adopt)
         _check_replaceable(final, kind, where)
         staging = parent / f".{final.name}.partial-{os.getpid()}-{secrets.token_hex(4)}"
+        keep = False
         try:  # made inside the try: a signal right after the mkdir still removes it
             try:
                 if adopt is not None:
@@ -133,8 +136,14 @@ def commit_folder(final: str | Path, kind: str, *, say: Callable[[str], None] = 
             yield staging
             write_marker(staging, kind)
             _swap_into_place(staging, final)
+        except BaseException:
+            # a resumable command keeps its finished work for the next run (the staging
+            # folder never looks complete: hidden name, no marker)
+            if resume is not None and staging.is_dir() and (staging / resume).is_file():
+                keep = True
+            raise
         finally:
-            if staging.exists():
+            if staging.exists() and not keep:
                 shutil.rmtree(staging, ignore_errors=True)
 
 

@@ -110,7 +110,8 @@ def test_fresh_makes_everything_again(reference, tmp_path, capsys):
     assert json.loads((out / "metrics.json").read_text())["run"]["reused"]["previous"] == []
 
 
-def test_a_run_killed_half_way_resumes_to_the_same_bits(reference, tmp_path, capsys):
+@pytest.mark.parametrize("signum", [signal.SIGKILL, signal.SIGINT], ids=["kill-9", "ctrl-c"])
+def test_a_run_stopped_half_way_resumes_to_the_same_bits(reference, tmp_path, capsys, signum):
     out = tmp_path / "out"
     child = subprocess.Popen([sys.executable, "-m", "simbench.cli", "run",
                               str(reference / "s.yaml"), "-o", str(out), "--quiet"],
@@ -128,9 +129,13 @@ def test_a_run_killed_half_way_resumes_to_the_same_bits(reference, tmp_path, cap
                 break
             time.sleep(0.05)
     finally:
-        os.killpg(child.pid, signal.SIGKILL)
-        child.wait()
-    assert not out.exists(), "a killed run must not leave a folder that looks complete"
+        if signum == signal.SIGKILL:
+            os.killpg(child.pid, signal.SIGKILL)
+        else:  # Ctrl-C: the run unwinds, and keeps its finished work for the next run
+            child.send_signal(signum)
+        code = child.wait(timeout=120)
+    assert code == (-9 if signum == signal.SIGKILL else 130)
+    assert not out.exists(), "a stopped run must not leave a folder that looks complete"
     partial = list(tmp_path.glob(".out.partial-*"))
     assert len(partial) == 1
     # damage one finished reconstruction: it must be made again, not taken over
