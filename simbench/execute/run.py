@@ -13,17 +13,19 @@ The run folder (committed whole by :func:`simbench.folders.commit_folder`, kind 
       metrics.json                 {algorithms: {name: {doses: {d: {metrics, rois, curves,
                                    seeds}}}}, run: {...}}
       report.html, figures/        the human report
+      items.json                   the ledger of finished items (what a rerun takes over)
       complete.json                written last
 
 Random streams come from the identity ``("run", scenario name, "dose", d, "realization",
 r)`` and the root seed, never from the order of execution: the same seed gives the same
-bits whatever runs first.
+bits whatever runs first, and whatever executor runs the tasks (one :class:`RunTask` per
+dose and realization, :mod:`simbench.execute.executors`). A rerun takes over finished items
+whose inputs are unchanged (:mod:`simbench.execute.reuse`).
 """
 
 from __future__ import annotations
 
 import contextlib
-import json
 import shutil
 import time
 from dataclasses import dataclass
@@ -197,11 +199,10 @@ def run_scenario(scenario, out: Path, *, allow_code: bool = False, progress: boo
     dict
         The content of ``metrics.json``.
     """
-    from simbench.execute.reuse import LEDGER, Ledger
-    from simbench.folders import commit_folder
-
     from simbench.execute import warm
     from simbench.execute.executors import open_executor
+    from simbench.execute.reuse import LEDGER, Ledger
+    from simbench.folders import commit_folder
 
     plan = RunPlan(scenario, out, allow_code=allow_code)
     if (workers or scheduler) and not Path(str(scenario.source)).is_file():

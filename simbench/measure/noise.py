@@ -29,7 +29,6 @@ R. K. Swank, "Absorption and noise in x-ray phosphors", J. Appl. Phys. 44, 4199 
 
 from __future__ import annotations
 
-import hashlib
 import math
 import threading
 
