@@ -117,7 +117,7 @@ def commit_folder(final: str | Path, kind: str, *, say: Callable[[str], None] = 
         parent.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise output_error(final, exc) from None
-    with _locked(final, where):
+    with locked(final, where):
         adopt = _resumable(final, resume)
         _clean_stale(final, say, spare=adopt)
         _check_replaceable(final, kind, where)
@@ -204,7 +204,9 @@ def _exchange(a: Path, b: Path) -> bool:
 
 
 @contextlib.contextmanager
-def _locked(final: Path, where: Where) -> Iterator[None]:
+def locked(final: Path, where: Where) -> Iterator[None]:
+    """Hold ``.<name>.lock`` beside ``final`` for the block: a second writer into the same
+    place is refused with one line naming the process that holds it."""
     lock_path = final.parent / f".{final.name}.lock"
     while True:
         try:

@@ -154,10 +154,10 @@ class DatasetPlan:
         (measured noise-free on one view, as a run does)."""
         if self.spec.reference_energy_kev is not None:
             return float(self.spec.reference_energy_kev)
-        from simbench.execute.run import _one_view, detected_effective_energy_kev
+        from simbench.execute.run import one_view_plan, detected_effective_energy_kev
         from simbench.execute.scan import ScanPlan, scan_arrays
 
-        probe = _one_view(ScanPlan(phantom, self.spec.scanner, self.out, None))
+        probe = one_view_plan(ScanPlan(phantom, self.spec.scanner, self.out, None))
         _, state = scan_arrays(probe, seed=0, noise=False, identity=("reference",), keep=(),
                                reference_energy_kev=60.0)
         weights = np.sum(state.metadata["signal_weights_per_bin"], axis=0)
@@ -474,7 +474,7 @@ def generate(plan: DatasetPlan, executor, *, start_over: bool = False, progress:
     dict
         Counts: ``reused``, ``written``, ``removed`` shards, samples written, seconds.
     """
-    from simbench.folders import _locked
+    from simbench.folders import locked
 
     out = plan.out
     started = time.perf_counter()
@@ -483,7 +483,7 @@ def generate(plan: DatasetPlan, executor, *, start_over: bool = False, progress:
         raise InputError(where, f"'{out}' exists and is not a folder",
                          "a new path, or a dataset folder written by simbench generate")
     out.parent.mkdir(parents=True, exist_ok=True)
-    with _locked(out, where):
+    with locked(out, where):
         _claim(plan, start_over, where)
         reused, removed = _inspect_shards(plan)
         todo = [ShardTask(plan, k, a, b) for k, a, b in plan.shards if shard_name(k) not in reused]

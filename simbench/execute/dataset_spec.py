@@ -139,8 +139,8 @@ def load_dataset_spec(path: str | Path, *, allow_code: bool = False) -> DatasetS
 def read_dataset_spec(document: Any, source: str, directory: Path, *,
                       allow_code: bool = False) -> DatasetSpec:
     """Turn a located YAML document into a :class:`DatasetSpec`."""
-    from simbench.scenario.spec import (_check_dimensions, _doses, _grid, _reference_energy,
-                                        _scanner)
+    from simbench.scenario.spec import (check_dimensions, read_doses, read_grid,
+                                        read_reference_energy, read_scanner)
     from simbench.spec import check_integer
 
     if document is None:
@@ -153,8 +153,8 @@ def read_dataset_spec(document: Any, source: str, directory: Path, *,
         raise top.error("name", "the name must be 1 to 200 characters", "a short name")
     description = top.string("description", "")
     family, family_ref = _family(top, directory)
-    scanner, scanner_ref = _scanner(top, directory)
-    _check_dimensions(top, family, scanner)
+    scanner, scanner_ref = read_scanner(top, directory)
+    check_dimensions(top, family, scanner)
     samples = check_integer(top.raw("samples"), top.at("samples"), minimum=1,
                             maximum=MAX_SAMPLES)
     seed = top.integer("seed", 0, minimum=0, maximum=2**63 - 1)
@@ -172,20 +172,20 @@ def read_dataset_spec(document: Any, source: str, directory: Path, *,
         level = top.integer("compression_level", minimum=1, maximum=9)
     wheres = {key: top.at(key) for key in TOP_KEYS}
     return DatasetSpec(name, description, family, scanner, family_ref, scanner_ref,
-                       _grid(top, scanner), _reference_energy(top), _doses(top), samples, seed,
-                       noise, store, reconstruction, per_shard, compression, level, source,
-                       wheres, allow_code)
+                       read_grid(top, scanner), read_reference_energy(top), read_doses(top),
+                       samples, seed, noise, store, reconstruction, per_shard, compression,
+                       level, source, wheres, allow_code)
 
 
 def _family(top: Section, directory: Path):
     from simbench.phantom.families import load_family
-    from simbench.scenario.spec import _resolve
+    from simbench.scenario.spec import resolve_file
 
     value = top.raw("phantom")
     if not isinstance(value, str) or not value.strip():
         raise top.error("phantom", "expected a phantom (family) file or shipped phantom name",
                         "a shipped phantom name (simbench list) or a phantom file path")
-    path = _resolve(value, "phantoms", directory)
+    path = resolve_file(value, "phantoms", directory)
     if not path.exists():
         raise top.error("phantom", f"no phantom '{value}' (not a shipped name, and no file "
                         f"'{path}')", "a shipped phantom name (simbench list) or a file path")

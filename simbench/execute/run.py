@@ -335,7 +335,7 @@ def _write_truth(staging: Path, plan: RunPlan, timings: dict, ledger) -> _Truth:
         truth.energy = float(scenario.reference_energy_kev)
     else:
         with tempfile.TemporaryDirectory(dir=staging) as tmp:
-            state = scan_into(Path(tmp), _one_view(first), seed=0, noise=False,
+            state = scan_into(Path(tmp), one_view_plan(first), seed=0, noise=False,
                               identity=("reference",), reference_energy_kev=60.0,
                               write_truth=False)
             weights = state.metadata["signal_weights_per_bin"]
@@ -353,7 +353,7 @@ def _write_truth(staging: Path, plan: RunPlan, timings: dict, ledger) -> _Truth:
     return truth
 
 
-def _one_view(plan):
+def one_view_plan(plan):
     """A plan of the first view only (the reference-energy probe)."""
     import copy
 

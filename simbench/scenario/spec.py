@@ -160,18 +160,18 @@ def read_scenario(document: Any, source: str, directory: Path) -> Scenario:
         raise top.error("name", "the name must be 1 to 200 characters", "a short name")
     description = top.string("description", "")
     phantom, phantom_ref = _phantom(top, directory)
-    scanner, scanner_ref = _scanner(top, directory)
-    _check_dimensions(top, phantom, scanner)
+    scanner, scanner_ref = read_scanner(top, directory)
+    check_dimensions(top, phantom, scanner)
     realizations = top.integer("realizations", 1, minimum=1, maximum=MAX_REALIZATIONS)
     seed = top.integer("seed", 0, minimum=0, maximum=MAX_SEED)
-    doses = _doses(top)
-    reference = _reference_energy(top)
+    doses = read_doses(top)
+    reference = read_reference_energy(top)
     algorithms = _algorithms(top)
     metrics = _metrics(top)
     rois = _rois(top, phantom)
     tolerances = _tolerances(top, metrics)
     task = _task(top)
-    grid = _grid(top, scanner)
+    grid = read_grid(top, scanner)
     wheres = {key: top.at(key) for key in TOP_KEYS}
     return Scenario(name, description, phantom, scanner, phantom_ref, scanner_ref, grid,
                     reference, seed, realizations, doses, algorithms, metrics, rois, tolerances,
@@ -183,7 +183,8 @@ def read_scenario(document: Any, source: str, directory: Path) -> Scenario:
 # ------------------------------------------------------------------------------------------
 
 
-def _resolve(value: str, kind: str, directory: Path) -> Path:
+def resolve_file(value: str, kind: str, directory: Path) -> Path:
+    """A shipped name or a path (relative to ``directory``) of a phantom or scanner file."""
     from simbench.data import shipped_files
 
     path = Path(value)
@@ -211,21 +212,22 @@ def _phantom(top: Section, directory: Path):
         raise top.error("phantom", "expected a phantom name, path or mapping",
                         "a shipped phantom name (simbench list), a file path, or the phantom "
                         "written inline")
-    path = _resolve(value, "phantoms", directory)
+    path = resolve_file(value, "phantoms", directory)
     if not path.exists():
         raise top.error("phantom", f"no phantom '{value}' (not a shipped name, and no file "
                         f"'{path}')", "a shipped phantom name (simbench list) or a file path")
     return load_phantom(path), value
 
 
-def _scanner(top: Section, directory: Path):
+def read_scanner(top: Section, directory: Path):
+    """The ``scanner`` key: a shipped name, a path or the file inline; (Scanner, reference)."""
     from simbench.scanner import _read, load_scanner
 
     value = top.raw("scanner")
     if isinstance(value, dict):
         scanner = _read(value, top.where.source)
     elif isinstance(value, str) and value.strip():
-        path = _resolve(value, "scanners", directory)
+        path = resolve_file(value, "scanners", directory)
         if not path.exists():
             raise top.error("scanner", f"no scanner '{value}' (not a shipped name, and no file "
                             f"'{path}')", "a shipped scanner name (simbench list) or a file path")
@@ -240,13 +242,15 @@ def _scanner(top: Section, directory: Path):
     return scanner, (value if isinstance(value, str) else "inline")
 
 
-def _check_dimensions(top: Section, phantom, scanner) -> None:
+def check_dimensions(top: Section, phantom, scanner) -> None:
+    """Refuse a 2-D phantom with a 3-D scanner and the other way round."""
     if phantom.dimension == 3 and scanner.geometry.dimension == 2:
         raise top.error("scanner", f"a 2-D scanner cannot scan the 3-D phantom '{phantom.name}'",
                         "a scanner with rows (cone, helical, stacked parallel)")
 
 
-def _doses(top: Section) -> tuple:
+def read_doses(top: Section) -> tuple:
+    """The ``doses`` key: factors on the scanner's exposure (default ``(1.0,)``)."""
     if not top.has("doses"):
         return (1.0,)
     items = top.sequence("doses")
@@ -262,7 +266,8 @@ def _doses(top: Section) -> tuple:
     return values
 
 
-def _reference_energy(top: Section) -> float | None:
+def read_reference_energy(top: Section) -> float | None:
+    """The ``reference_energy`` key in keV, or None for the effective energy."""
     value = top.raw("reference_energy", "effective")
     if value == "effective":
         return None
@@ -398,7 +403,8 @@ def _tolerances(top: Section, metrics: tuple) -> dict:
     return out
 
 
-def _grid(top: Section, scanner) -> dict:
+def read_grid(top: Section, scanner) -> dict:
+    """The ``grid`` key, as the text options that ``grid_from_options`` reads."""
     out = {"size": None, "voxel_size": None, "centre": None}
     if not top.has("grid"):
         return out
