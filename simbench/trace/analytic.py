@@ -291,8 +291,12 @@ def trace_ray(ox, oy, oz, dx, dy, dz, t_min, t_max, u, cand, n_cand, win,
         ex = ox - centre[k, 0]
         ey = oy - centre[k, 1]
         ez = oz - centre[k, 2]
-        if rotation[k, 0, 0] == 1.0 and rotation[k, 1, 1] == 1.0 and rotation[k, 2, 2] == 1.0:
-            # the identity (a rotation with a unit diagonal is the identity): skip the turn
+        if (rotation[k, 0, 0] == 1.0 and rotation[k, 1, 1] == 1.0 and rotation[k, 2, 2] == 1.0
+                and rotation[k, 0, 1] == 0.0 and rotation[k, 0, 2] == 0.0
+                and rotation[k, 1, 0] == 0.0 and rotation[k, 1, 2] == 0.0
+                and rotation[k, 2, 0] == 0.0 and rotation[k, 2, 1] == 0.0):
+            # exactly the identity: skip the turn (a unit diagonal alone is not enough in
+            # floating point: below about 1e-8 rad the cosine rounds to 1 and the sine does not)
             lx = ex
             ly = ey
             lz = ez
