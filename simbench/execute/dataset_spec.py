@@ -139,25 +139,18 @@ def load_dataset_spec(path: str | Path, *, allow_code: bool = False) -> DatasetS
 def read_dataset_spec(document: Any, source: str, directory: Path, *,
                       allow_code: bool = False) -> DatasetSpec:
     """Turn a located YAML document into a :class:`DatasetSpec`."""
-    from simbench.scenario.spec import (check_dimensions, read_doses, read_grid,
-                                        read_reference_energy, read_scanner)
+    from simbench.scenario.spec import (MAX_SEED, check_dimensions, read_doses, read_grid,
+                                        read_header, read_reference_energy, read_scanner)
     from simbench.spec import check_integer
 
-    if document is None:
-        raise InputError(Where(source, 1, 1), "the dataset spec is empty",
-                         "a mapping with name, phantom, scanner and samples")
-    top = Section.root(document, source)
-    top.check_keys(TOP_KEYS, required=("name", "phantom", "scanner", "samples"))
-    name = top.string("name")
-    if not name.strip() or len(name) > 200:
-        raise top.error("name", "the name must be 1 to 200 characters", "a short name")
-    description = top.string("description", "")
+    top, name, description = read_header(document, source, "dataset spec", TOP_KEYS,
+                                         ("name", "phantom", "scanner", "samples"))
     family, family_ref = _family(top, directory)
     scanner, scanner_ref = read_scanner(top, directory)
     check_dimensions(top, family, scanner)
     samples = check_integer(top.raw("samples"), top.at("samples"), minimum=1,
                             maximum=MAX_SAMPLES)
-    seed = top.integer("seed", 0, minimum=0, maximum=2**63 - 1)
+    seed = top.integer("seed", 0, minimum=0, maximum=MAX_SEED)
     noise = top.boolean("noise", True)
     store = _store(top)
     reconstruction = _reconstruction(top, allow_code)

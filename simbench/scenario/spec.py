@@ -148,17 +148,31 @@ def load_scenario(path: str | Path) -> Scenario:
     return read_scenario(load_yaml(path, "scenario file"), str(path), path.parent)
 
 
-def read_scenario(document: Any, source: str, directory: Path) -> Scenario:
-    """Turn a located YAML document into a :class:`Scenario`."""
+def read_header(document: Any, source: str, what: str, keys: tuple, required: tuple
+                ) -> tuple[Section, str, str]:
+    """The top level of a scenario or dataset spec: its keys checked, its name and description.
+
+    Returns
+    -------
+    (Section, str, str)
+        The top-level section, the name (1 to 200 characters) and the description ("" if
+        absent).
+    """
     if document is None:
-        raise InputError(Where(source, 1, 1), "the scenario file is empty",
-                         "a mapping with name, phantom, scanner and algorithms")
+        raise InputError(Where(source, 1, 1), f"the {what} is empty",
+                         "a mapping with " + ", ".join(required[:-1]) + f" and {required[-1]}")
     top = Section.root(document, source)
-    top.check_keys(TOP_KEYS, required=("name", "phantom", "scanner", "algorithms"))
+    top.check_keys(keys, required=required)
     name = top.string("name")
     if not name.strip() or len(name) > 200:
         raise top.error("name", "the name must be 1 to 200 characters", "a short name")
-    description = top.string("description", "")
+    return top, name, top.string("description", "")
+
+
+def read_scenario(document: Any, source: str, directory: Path) -> Scenario:
+    """Turn a located YAML document into a :class:`Scenario`."""
+    top, name, description = read_header(document, source, "scenario file", TOP_KEYS,
+                                         ("name", "phantom", "scanner", "algorithms"))
     phantom, phantom_ref = _phantom(top, directory)
     scanner, scanner_ref = read_scanner(top, directory)
     check_dimensions(top, phantom, scanner)
