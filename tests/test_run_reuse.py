@@ -184,9 +184,11 @@ def test_two_worker_processes_give_the_same_bits(reference, tmp_path, capsys):
     assert _scores(out) == _scores(reference / "whole")
 
 
-def test_a_bad_worker_count_is_one_line(reference, tmp_path, capsys):
+@pytest.mark.parametrize("count, extra", [("zero", []), ("200", ["--memory-budget", "1 GiB"])],
+                         ids=["not a number", "over the memory budget"])
+def test_a_bad_worker_count_is_one_line(reference, tmp_path, capsys, count, extra):
     assert main(["run", str(reference / "s.yaml"), "-o", str(tmp_path / "out"), "--quiet",
-                 "--workers", "zero"]) == 2
+                 "--workers", count, *extra]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "--workers" in err[0] and "(valid:" in err[0]
     assert not (tmp_path / "out").exists()
