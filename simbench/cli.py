@@ -619,8 +619,8 @@ def main(argv: list[str] | None = None) -> int:
     except (Interrupted, KeyboardInterrupt) as stop:
         signum = getattr(stop, "signum", signal.SIGINT)
         sys.stderr.write(f"simbench: stopped by {signal.Signals(signum).name}; nothing "
-                         "half-written was put in place (a run resumes from its finished work "
-                         "when started again)\n")
+                         "half-written was put in place ('run' and 'generate' resume from their "
+                         "finished work when started again)\n")
         return 128 + int(signum)
     except OSError as exc:
         place = exc.filename if exc.filename is not None else "<output>"
