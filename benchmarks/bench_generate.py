@@ -160,31 +160,26 @@ def test_peak_memory_of_a_256_cube_cone_beam_sample(benchmark):
     assert peak < 3 * arrays
 
 
-COMPILE_SCRIPT = r"""
-import dataclasses, tempfile, time
+COMPILE_SETUP = """
+import dataclasses, tempfile
 from pathlib import Path
 from simbench.execute.dataset import DatasetPlan, generate
 from simbench.execute.dataset_spec import load_dataset_spec
 from simbench.execute.executors import InProcess
 
 spec = dataclasses.replace(load_dataset_spec("inserts-2d"), samples=1, samples_per_shard=1)
-
-def once():
-    with tempfile.TemporaryDirectory() as tmp:
-        wall, cpu = time.perf_counter(), time.process_time()
-        plan = DatasetPlan(spec, Path(tmp) / "data")
-        generate(plan, InProcess(), progress=False, say=lambda *_: None)
-        return time.perf_counter() - wall, time.process_time() - cpu
-
-(cold_wall, cold_cpu), (warm_wall, warm_cpu) = once(), once()
-print(cold_wall - warm_wall, cold_cpu - warm_cpu)
+"""
+COMPILE_WORK = """
+with tempfile.TemporaryDirectory() as tmp:
+    plan = DatasetPlan(spec, Path(tmp) / "data")
+    generate(plan, InProcess(), progress=False, say=lambda *_: None)
 """
 
 
 def test_generate_compile_time_into_an_empty_cache(benchmark):
     from support import compile_in_empty_cache
 
-    runs = [compile_in_empty_cache(COMPILE_SCRIPT) for _ in range(2)]
+    runs = [compile_in_empty_cache(COMPILE_SETUP, COMPILE_WORK) for _ in range(2)]
     walls, cpus = [w for w, _ in runs], [c for _, c in runs]
     print(f"\ngenerate, first sample of inserts-2d into an empty numba cache: compile "
           f"{min(walls):.1f} to {max(walls):.1f} s wall, {min(cpus):.1f} to {max(cpus):.1f} s "
